@@ -1,0 +1,22 @@
+"""The project's exception family: every user-facing failure is one of these."""
+
+
+class SheafsynthError(Exception):
+    """Base class: the CLI turns any of these into a one-line message."""
+
+
+class PresetError(SheafsynthError):
+    """A preset is malformed; the message starts with the JSON path at fault."""
+
+    def __init__(self, message: str, path: str = ""):
+        self.path = path
+        self.problem = message
+        super().__init__(f"{path}: {message}" if path else message)
+
+
+class BuildError(SheafsynthError):
+    """Generated C failed to compile or load."""
+
+
+class AudioError(SheafsynthError):
+    """The audio device could not be opened or failed while running."""

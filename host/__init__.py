@@ -1,0 +1,1 @@
+"""sheafsynth host: command line, offline render, live audio and MIDI."""
