@@ -124,7 +124,7 @@ static inline double ss_note_hz(double note) {
  */
 #define SS_MAX_TUNE_STATES 16
 
-static double ss_block_phase(int k, const double *A, const double *B, const double *C,
+static inline double ss_block_phase(int k, const double *A, const double *B, const double *C,
                              double D, double w) {
     double mr[SS_MAX_TUNE_STATES][SS_MAX_TUNE_STATES + 1];
     double mi[SS_MAX_TUNE_STATES][SS_MAX_TUNE_STATES + 1];

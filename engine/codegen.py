@@ -46,9 +46,9 @@ def num(x: float) -> str:
     x = float(x)
     if not math.isfinite(x):
         raise BuildError(f"refusing to print a non-finite number ({x!r}) into C source")
-    f = float(np.float32(x))
-    if not math.isfinite(f):
+    if abs(x) > 3.4028234663852886e38:
         raise BuildError(f"number {x!r} overflows a C float")
+    f = float(np.float32(x))
     s = repr(f)
     if "e" not in s and "." not in s and "inf" not in s:
         s += ".0"
@@ -148,6 +148,7 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
     w("    int32_t exl = v->exc_left;")
     w("    float exy = v->exc_y;")
     w("    const float exa = v->exc_amp, exq = v->exc_pole;")
+    w("    (void)exq;")
     for b in prog.blocks:
         if b.is_delay:
             w(f"    float *r{b.index} = v->ring{b.index};")

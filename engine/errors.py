@@ -14,6 +14,10 @@ class PresetError(SheafsynthError):
         super().__init__(f"{path}: {message}" if path else message)
 
 
+class InputError(SheafsynthError):
+    """A bad argument or input file other than a preset (MIDI file, option)."""
+
+
 class BuildError(SheafsynthError):
     """Generated C failed to compile or load."""
 

@@ -129,6 +129,10 @@ class Instrument:
     def _push(self, offset: int, typ: int, a: int = 0, b: int = 0, value: float = 0.0) -> None:
         self._events.append((int(offset), typ, int(a), int(b), float(value)))
 
+    def push_event(self, offset: int, typ: int, a: int = 0, b: int = 0, value: float = 0.0) -> None:
+        """Queue a raw kernel event (types in engine.voicing / csrc/ss_abi.h)."""
+        self._push(offset, typ, a, b, value)
+
     def note_on(self, note: int, velocity: int = 100, offset: int = 0) -> None:
         self._push(offset, V.EV_NOTE_ON, note, velocity)
 

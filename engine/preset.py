@@ -241,6 +241,9 @@ def parse_preset(doc: dict, where: str = "<memory>") -> Preset:
         release_decay=float(doc.get("release", {}).get("decay", 0.9)), source=where,
     )
     preset.sheaf  # semantic validation of cells and wires
+    from .lower import lower
+
+    lower(preset)  # structural checks of the lowering (tuning loops, fields)
     return preset
 
 
@@ -295,6 +298,7 @@ def save_preset(doc: Mapping | Preset, path: str | os.PathLike) -> Path:
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".tmp", dir=target.parent)
     try:
+        os.chmod(tmp, _file_mode(target))
         with os.fdopen(fd, "w", encoding="utf-8") as f:
             f.write(text)
             f.flush()
@@ -315,6 +319,16 @@ def save_preset(doc: Mapping | Preset, path: str | os.PathLike) -> Path:
     except OSError:
         pass
     return target
+
+
+def _file_mode(target: Path) -> int:
+    """Keep an existing file's mode; new files get 0666 minus the umask."""
+    try:
+        return target.stat().st_mode & 0o777
+    except FileNotFoundError:
+        umask = os.umask(0)
+        os.umask(umask)
+        return 0o666 & ~umask
 
 
 def factory_presets() -> list[Path]:

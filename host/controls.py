@@ -1,0 +1,168 @@
+"""MIDI messages -> kernel events: controller map, curves, bend range, pedals.
+
+One translator serves live play and offline render, so a MIDI file and a
+keyboard drive an instrument identically.  Message meanings follow the MIDI
+1.0 Detailed Specification (MMA): CC 64 sustain (>= 64 down), CC 120 all
+sound off, CC 121 reset all controllers, CC 123 all notes off (124-127 also
+end all notes), pitch bend 14-bit centred on 8192 with the range set by
+RPN 0/0 (default +-2 semitones), channel pressure.
+
+Curves are a table (name -> function of x in [0, 1]) so the schema, the docs
+and the code cannot disagree.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Callable
+
+from engine import voicing as V
+from engine.errors import PresetError
+from engine.preset import ControlSpec, Preset
+
+CURVES: dict[str, Callable[[float, float, float], float]] = {
+    "linear": lambda x, lo, hi: lo + (hi - lo) * x,
+    "exp": lambda x, lo, hi: lo * (hi / lo) ** x,
+}
+
+CC_SUSTAIN, CC_ALL_SOUND_OFF, CC_RESET, CC_ALL_NOTES_OFF = 64, 120, 121, 123
+CC_RPN_MSB, CC_RPN_LSB, CC_DATA_MSB, CC_DATA_LSB = 101, 100, 6, 38
+DEFAULT_BEND_RANGE = 2.0
+
+
+def curve_value(spec: ControlSpec, x: float) -> float:
+    """Parameter value for a controller position ``x`` in [0, 1]."""
+    x = min(1.0, max(0.0, x))
+    return CURVES[spec.curve](x, spec.lo, spec.hi)
+
+
+@dataclass
+class Binding:
+    """A live controller binding (a preset control, or one made by learn mode)."""
+
+    spec: ControlSpec
+    index: int                      # kernel parameter index
+
+
+@dataclass
+class TranslatorCounters:
+    received: int = 0
+    ignored: int = 0                # other channel, unknown or malformed
+    last_control: str = ""          # "tone = 0.31 tap weight"
+
+
+@dataclass
+class MidiTranslator:
+    """Turns mido messages into kernel event tuples (offset, type, a, b, value)."""
+
+    preset: Preset
+    param_index: dict[str, int]
+    channel: int | None = None      # 0-15, None = omni
+    bend_range: float = DEFAULT_BEND_RANGE
+    on_program: Callable[[int], None] | None = None
+    counters: TranslatorCounters = field(default_factory=TranslatorCounters)
+
+    def __post_init__(self):
+        self.cc_map: dict[int, Binding] = {}
+        self.velocity: list[Binding] = []
+        self.pressure: list[Binding] = []
+        for c in self.preset.controls:
+            if c.source == "pitchbend":
+                self.bend_range = c.range_semitones
+                continue
+            b = Binding(c, self.param_index[c.parameter])
+            if c.source == "cc":
+                self.cc_map[c.cc] = b
+            elif c.source == "velocity":
+                self.velocity.append(b)
+            elif c.source == "pressure":
+                self.pressure.append(b)
+        self.default_bend_range = self.bend_range
+        self._rpn = (127, 127)
+        self.learn_target: str | None = None
+        self.learned: list[tuple[int, str]] = []
+
+    # -- learn mode ---------------------------------------------------------
+    def learn(self, parameter: str) -> None:
+        """Bind the next moved (unreserved) CC to ``parameter``."""
+        if parameter not in self.param_index:
+            raise PresetError(f'unknown parameter "{parameter}"', "learn")
+        self.learn_target = parameter
+
+    def bind(self, cc: int, parameter: str, curve: str = "linear") -> None:
+        spec = self.preset.parameters[parameter]
+        self.cc_map[cc] = Binding(ControlSpec("cc", cc, parameter, curve, spec.lo, spec.hi),
+                                  self.param_index[parameter])
+
+    # -- translation --------------------------------------------------------
+    def translate(self, msg, offset: int = 0) -> list[tuple]:
+        """Kernel events for one mido message (empty when ignored)."""
+        self.counters.received += 1
+        t = getattr(msg, "type", None)
+        ch = getattr(msg, "channel", None)
+        if ch is not None and self.channel is not None and ch != self.channel:
+            self.counters.ignored += 1
+            return []
+        if t == "note_on":
+            out = [self._param(b, msg.velocity / 127.0, offset) for b in self.velocity if msg.velocity > 0]
+            out.append((offset, V.EV_NOTE_ON, msg.note, msg.velocity, 0.0))
+            return out
+        if t == "note_off":
+            return [(offset, V.EV_NOTE_OFF, msg.note, 0, 0.0)]
+        if t == "control_change":
+            return self._cc(msg.control, msg.value, offset)
+        if t == "pitchwheel":
+            return [(offset, V.EV_BEND, 0, 0, msg.pitch / 8192.0 * self.bend_range)]
+        if t == "aftertouch":
+            return [self._param(b, msg.value / 127.0, offset) for b in self.pressure]
+        if t == "program_change":
+            if self.on_program is not None:
+                self.on_program(msg.program)
+            return []
+        self.counters.ignored += 1
+        return []
+
+    def _param(self, b: Binding, x: float, offset: int) -> tuple:
+        v = curve_value(b.spec, x)
+        unit = self.preset.parameters[b.spec.parameter].unit
+        self.counters.last_control = f"{b.spec.parameter} = {v:.4g}{(' ' + unit) if unit else ''}"
+        return (offset, V.EV_PARAM, b.index, 0, v)
+
+    def _cc(self, cc: int, value: int, offset: int) -> list[tuple]:
+        if cc == CC_SUSTAIN:
+            return [(offset, V.EV_SUSTAIN, 0, 1 if value >= 64 else 0, 0.0)]
+        if cc == CC_ALL_SOUND_OFF:
+            return [(offset, V.EV_ALL_SOUND_OFF, 0, 0, 0.0)]
+        if cc == CC_RESET:
+            # Reset controllers: bend to centre, pedal up; the RPN bend range
+            # is kept (MIDI RP-015 recommended practice).
+            return [(offset, V.EV_BEND, 0, 0, 0.0), (offset, V.EV_SUSTAIN, 0, 0, 0.0)]
+        if cc == CC_ALL_NOTES_OFF or 124 <= cc <= 127:
+            return [(offset, V.EV_ALL_NOTES_OFF, 0, 0, 0.0)]
+        if cc == CC_RPN_MSB:
+            self._rpn = (value, self._rpn[1])
+            return []
+        if cc == CC_RPN_LSB:
+            self._rpn = (self._rpn[0], value)
+            return []
+        if cc in (CC_DATA_MSB, CC_DATA_LSB):
+            if self._rpn == (0, 0):
+                semis = math.floor(self.bend_range)
+                cents = round((self.bend_range - semis) * 100)
+                if cc == CC_DATA_MSB:
+                    semis = value
+                else:
+                    cents = min(value, 99)
+                self.bend_range = semis + cents / 100.0
+            return []
+        if self.learn_target is not None and cc not in self.cc_map:
+            name = self.learn_target
+            self.bind(cc, name)
+            self.learned.append((cc, name))
+            self.learn_target = None
+        b = self.cc_map.get(cc)
+        if b is None:
+            self.counters.ignored += 1
+            return []
+        return [self._param(b, value / 127.0, offset)]

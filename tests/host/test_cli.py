@@ -1,0 +1,140 @@
+"""The command line: render, MIDI files, inspect, presets, demo, errors."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import mido
+import numpy as np
+import pytest
+import soundfile as sf
+
+from host.cli import main
+from tests.measure import cents, fundamental
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "host.cli", *args], capture_output=True, text=True,
+                          cwd=cwd, timeout=300)
+
+
+def test_render_note_writes_a_wav(tmp_path):
+    out = tmp_path / "note.wav"
+    assert main(["render", "porch-pluck", "--note", "57", "--velocity", "100", "--seconds", "1",
+                 "--out", str(out)]) == 0
+    x, rate = sf.read(out)
+    assert rate == 48000 and len(x) == 48000
+    f = fundamental(x[4800:36000], rate, 220.0)
+    assert abs(cents(f, 220.0)) < 0.5          # MIDI note 57 = A3 = 220 Hz (MIDI numbering, ISO 16)
+
+
+@pytest.mark.parametrize("rate", [44100, 96000])
+def test_render_other_rates_stay_in_tune(tmp_path, rate):
+    out = tmp_path / "r.wav"
+    assert main(["render", "lantern-harp", "--note", "69", "--rate", str(rate), "--seconds", "1",
+                 "--out", str(out)]) == 0
+    x, r = sf.read(out)
+    assert r == rate
+    assert abs(cents(fundamental(x[r // 10: int(r * 0.7)], r, 440.0), 440.0)) < 0.5
+
+
+def _smf(path, midi_type: int):
+    """A small Standard MIDI File: a note, sustain pedal, a bend, a mapped CC (SMF 1.0 via mido)."""
+    mid = mido.MidiFile(type=midi_type, ticks_per_beat=480)
+    tempo = mido.bpm2tempo(120)
+    t0 = mido.MidiTrack([mido.MetaMessage("set_tempo", tempo=tempo)])
+    notes = mido.MidiTrack() if midi_type == 1 else t0
+    notes += [mido.Message("note_on", note=60, velocity=100, time=0),
+              mido.Message("control_change", control=64, value=127, time=240),
+              mido.Message("note_off", note=60, velocity=0, time=240),
+              mido.Message("control_change", control=74, value=10, time=120),
+              mido.Message("pitchwheel", pitch=4096, time=120),
+              mido.Message("control_change", control=64, value=0, time=480)]
+    mid.tracks.append(t0)
+    if midi_type == 1:
+        mid.tracks.append(notes)
+    mid.save(str(path))
+    return path
+
+
+@pytest.mark.parametrize("midi_type", [0, 1])
+def test_render_midi_file(tmp_path, midi_type):
+    mid = _smf(tmp_path / f"take{midi_type}.mid", midi_type)
+    out = tmp_path / "take.wav"
+    assert main(["render", "lantern-harp", "--midi", str(mid), "--out", str(out)]) == 0
+    x, rate = sf.read(out)
+    assert len(x) > rate * 1.2          # 1.25 s of events plus a release tail
+    assert np.isfinite(x).all() and np.abs(x).max() > 0.01
+    # the pedal held the note past its note-off (t = 0.5 s): still sounding at 0.9 s
+    assert np.abs(x[int(0.85 * rate):int(0.95 * rate)]).max() > 1e-3
+    # half-way bend (pitch 4096 of 8192 at +-2 semitones = +1 semitone) from t = 0.875 s
+    seg = x[int(0.95 * rate):int(1.2 * rate)]
+    want = 261.6255653005986 * 2 ** (1 / 12)
+    assert abs(cents(fundamental(seg, rate, want), want)) < 3.0
+
+
+def test_render_is_deterministic(tmp_path):
+    a, b = tmp_path / "a.wav", tmp_path / "b.wav"
+    for p in (a, b):
+        assert main(["render", "cedar-box", "--note", "50", "--seconds", "0.5", "--seed", "3", "--out", str(p)]) == 0
+    assert np.array_equal(sf.read(a)[0], sf.read(b)[0])
+
+
+def test_set_outside_range_is_refused(tmp_path, capsys):
+    rc = main(["render", "lantern-harp", "--set", "tone=0.9", "--out", str(tmp_path / "x.wav")])
+    err = capsys.readouterr().err
+    assert rc == 2 and "parameters.tone" in err and "outside" in err
+    assert not (tmp_path / "x.wav").exists()
+
+
+def test_bad_preset_exit_2_with_path_and_no_traceback(tmp_path):
+    bad = tmp_path / "bad.json"
+    doc = json.load(open("presets/porch-pluck.json"))
+    doc["wires"][1]["gain"] = "decya"
+    bad.write_text(json.dumps(doc))
+    r = run("render", str(bad), "--out", str(tmp_path / "x.wav"))
+    assert r.returncode == 2
+    assert 'wires[1].gain: unknown parameter "decya"' in r.stderr
+    assert "Traceback" not in r.stderr
+
+
+def test_unknown_preset_name_lists_known_ones():
+    r = run("render", "no-such-instrument")
+    assert r.returncode == 2 and "porch-pluck" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_bad_midi_file_is_a_clear_error(tmp_path):
+    f = tmp_path / "broken.mid"
+    f.write_bytes(b"MThd\x00\x00\x00\x06garbage")
+    r = run("render", "porch-pluck", "--midi", str(f), "--out", str(tmp_path / "x.wav"))
+    assert r.returncode == 2 and "broken.mid" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_inspect_shows_stalks_and_restriction_maps(capsys):
+    assert main(["inspect", "lantern-harp"]) == 0
+    out = capsys.readouterr().out
+    assert "stalk 2" in out and "output [D C]" in out and "1 - tone" in out and "moves: damp" in out
+
+
+def test_presets_lists_factory_and_user(user_dir, capsys):
+    user_dir.mkdir(parents=True)
+    (user_dir / "broken.json").write_text("{nope")
+    assert main(["presets"]) == 0
+    out = capsys.readouterr().out
+    for name in ("porch-pluck", "lantern-harp", "cedar-box"):
+        assert name in out
+    assert "broken" in out and "unusable" in out
+    assert (user_dir / "broken.json").exists()     # reported, never deleted
+
+
+def test_demo_renders_every_factory_preset(tmp_path):
+    from engine.preset import factory_presets
+
+    r = run("demo", "--out-dir", str(tmp_path / "demo"))
+    assert r.returncode == 0, r.stderr
+    assert "Caution" in r.stdout
+    for p in factory_presets():
+        x, rate = sf.read(tmp_path / "demo" / f"{p.stem}.wav")
+        assert np.isfinite(x).all() and 0.01 < np.abs(x).max() <= 0.8913
