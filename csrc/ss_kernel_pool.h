@@ -7,7 +7,7 @@
  *   SSK_EXC_IMPULSE, SSK_EXC_LEN (0 = one period), SSK_EXC_BRIGHT, SSK_EXC_GAIN,
  *   SSK_GUARD, SSK_SIL_RELEASED, SSK_SIL_HELD, SSK_HELD_QUIET, SSK_MAX_BEND,
  *   SSK_LIM_CEIL, SSK_LIM_REL_S,
- *   ssk_param_lo[], ssk_param_hi[], ssk_param_def[], ssk_param_slope[],
+ *   ssk_param_lo[], ssk_param_hi[], ssk_param_def[], ssk_param_ramp[] (samples),
  *   ssk_voice (starting with SS_VOICE_COMMON), ssk_state (starting with SS_STATE_COMMON),
  *   ssk_voice_reset, ssk_tune, ssk_release_gains, ssk_coef_static, ssk_coef_traj,
  *   ssk_voice_render.
@@ -110,6 +110,10 @@ static void ssk_event(ssk_state *S, const ss_event *e) {
             if (x < ssk_param_lo[a]) x = ssk_param_lo[a];
             if (x > ssk_param_hi[a]) x = ssk_param_hi[a];
             S->p_tgt[a] = x;
+            /* a linear ramp over a fixed time: small steps are smoothed as much
+               as large ones, and the slope never exceeds range / ramp time */
+            S->p_left[a] = S->p_ramp[a];
+            S->p_step[a] = (float)(((double)x - (double)S->p_cur[a]) / (double)S->p_ramp[a]);
         }
         return;
     case SS_EV_BEND:
@@ -159,14 +163,17 @@ static void ssk_event(ssk_state *S, const ss_event *e) {
 static void ssk_segment(ssk_state *S, int a, int b) {
     int i, n, p, moving = 0;
     for (p = 0; p < SSK_NPARAM; ++p)
-        if (S->p_cur[p] != S->p_tgt[p]) moving = 1;
+        if (S->p_left[p] > 0) moving = 1;
     if (moving) {
         for (n = a; n < b; ++n) {
             for (p = 0; p < SSK_NPARAM; ++p) {
-                double d = (double)S->p_tgt[p] - (double)S->p_cur[p];
-                float s = S->p_slope[p];
-                if (d <= (double)s && d >= -(double)s) S->p_cur[p] = S->p_tgt[p];
-                else S->p_cur[p] = d > 0.0 ? S->p_cur[p] + s : S->p_cur[p] - s;
+                if (S->p_left[p] > 1) {
+                    S->p_cur[p] = S->p_cur[p] + S->p_step[p];
+                    S->p_left[p] -= 1;
+                } else if (S->p_left[p] == 1) {
+                    S->p_cur[p] = S->p_tgt[p];
+                    S->p_left[p] = 0;
+                }
                 S->ptraj[p][n] = S->p_cur[p];
             }
         }
@@ -240,7 +247,9 @@ int sheafsynth_init(void *state, uint32_t seed) {
     S->inv_fade = (float)(1.0 / (double)SSK_FADE);
     for (p = 0; p < SSK_NPARAM; ++p) {
         S->p_cur[p] = S->p_tgt[p] = ssk_param_def[p];
-        S->p_slope[p] = ssk_param_slope[p];
+        S->p_ramp[p] = ssk_param_ramp[p];
+        S->p_left[p] = 0;
+        S->p_step[p] = 0.0f;
     }
     for (i = 0; i < SSK_POLY; ++i) ssk_clear(&S->voices[i]);
     ss_limiter_init(&S->lim, SSK_RATE, SSK_LIM_REL_S, (float)SSK_LIM_CEIL);
@@ -263,15 +272,16 @@ int sheafsynth_set_param_now(void *state, int index, float value) {
     if (value < ssk_param_lo[index]) value = ssk_param_lo[index];
     if (value > ssk_param_hi[index]) value = ssk_param_hi[index];
     S->p_cur[index] = S->p_tgt[index] = value;
+    S->p_left[index] = 0;
     S->retune = 1;
     return SS_OK;
 }
 
-int sheafsynth_set_slope(void *state, int index, float per_sample) {
+int sheafsynth_set_ramp(void *state, int index, int samples) {
     ssk_state *S = (ssk_state *)state;
     if (!S || !S->prepared) return SS_ERR_STATE;
-    if (index < 0 || index >= SSK_NPARAM || !(per_sample > 0.0f)) return SS_ERR_STATE;
-    S->p_slope[index] = per_sample;
+    if (index < 0 || index >= SSK_NPARAM || samples < 1) return SS_ERR_STATE;
+    S->p_ramp[index] = samples;
     return SS_OK;
 }
 

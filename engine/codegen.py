@@ -35,7 +35,7 @@ int sheafsynth_init(void *state, uint32_t seed);
 int sheafsynth_render(void *state, const ss_event *events, int n_events, float *out, int frames);
 int sheafsynth_set_limiter(void *state, int on);
 int sheafsynth_set_param_now(void *state, int index, float value);
-int sheafsynth_set_slope(void *state, int index, float per_sample);
+int sheafsynth_set_ramp(void *state, int index, int samples);
 float sheafsynth_get_param(void *state, int index);
 int sheafsynth_voices(void *state, int32_t *status, int32_t *note, int n);
 """
@@ -342,7 +342,8 @@ def generate(prog: StepProgram) -> str:
     arr("ssk_param_lo", [p.lo for p in prog.params])
     arr("ssk_param_hi", [p.hi for p in prog.params])
     arr("ssk_param_def", [p.value for p in prog.params])
-    arr("ssk_param_slope", prog.slopes_per_sample())
+    ramps = [str(n) for n in prog.ramp_samples()] or ["1"]
+    w(f"static const int32_t ssk_param_ramp[{len(ramps)}] = {{{', '.join(ramps)}}};")
     w("")
     w("typedef struct ssk_voice {")
     w("    SS_VOICE_COMMON")
@@ -362,7 +363,8 @@ def generate(prog: StepProgram) -> str:
     w("")
     w("typedef struct ssk_state {")
     w("    SS_STATE_COMMON")
-    w(f"    float p_cur[{max(1, np_)}], p_tgt[{max(1, np_)}], p_slope[{max(1, np_)}];")
+    w(f"    float p_cur[{max(1, np_)}], p_tgt[{max(1, np_)}], p_step[{max(1, np_)}];")
+    w(f"    int32_t p_ramp[{max(1, np_)}], p_left[{max(1, np_)}];")
     w(f"    float cval[{max(1, ncoef)}];")
     w(f"    float ptraj[{max(1, np_)}][SSK_MAXB];")
     w(f"    float ctraj[{max(1, ncoef)}][SSK_MAXB];")

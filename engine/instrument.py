@@ -120,10 +120,16 @@ class Instrument:
             raise PresetError(f"value {value:g} is outside [{p.lo:g}, {p.hi:g}]", f"parameters.{name}")
         self._check(self._mod.lib.sheafsynth_set_param_now(self._state, i, float(value)), "set")
 
-    def set_slope(self, name: str, per_second: float) -> None:
-        """Limit how fast the kernel ramps a parameter (units per second)."""
+    def set_ramp(self, name: str, seconds: float) -> None:
+        """Length of the kernel's linear ramp for every change of ``name`` (s).
+
+        The steepest ramp is then (max - min) / seconds per second; the
+        ramp-limited stability certificate sets this so the kernel never
+        moves a parameter faster than the proof allows.
+        """
         i = self.param_index(name)
-        self._check(self._mod.lib.sheafsynth_set_slope(self._state, i, float(per_second) / self.rate), "slope")
+        n = max(1, int(round(float(seconds) * self.rate)))
+        self._check(self._mod.lib.sheafsynth_set_ramp(self._state, i, n), "ramp")
 
     # -- events ------------------------------------------------------------
     def _push(self, offset: int, typ: int, a: int = 0, b: int = 0, value: float = 0.0) -> None:

@@ -51,7 +51,12 @@ class ParamInfo:
     lo: float
     hi: float
     unit: str
-    slope_per_s: float          # largest change per second the kernel ramp allows
+    ramp_s: float               # every change is a linear ramp of this length (s)
+
+    @property
+    def slope_per_s(self) -> float:
+        """Largest change per second the kernel's ramp can make (a full-range jump)."""
+        return (self.hi - self.lo) / self.ramp_s
 
 
 @dataclass(frozen=True)
@@ -151,8 +156,9 @@ class StepProgram:
                 return b
         raise KeyError(name)
 
-    def slopes_per_sample(self) -> list[float]:
-        return [p.slope_per_s / self.rate for p in self.params]
+    def ramp_samples(self) -> list[int]:
+        """Length of every parameter's ramp in samples (at least 1)."""
+        return [max(1, int(round(p.ramp_s * self.rate))) for p in self.params]
 
 
 def note_hz(note: float) -> float:
@@ -166,7 +172,7 @@ def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int |
         if not (8000.0 <= rate <= 192000.0):
             raise PresetError(f"sample rate {rate:g} Hz is outside 8000..192000", "rate")
     sheaf: NetworkSheaf = preset.sheaf
-    params = [ParamInfo(p.name, i, p.value, p.lo, p.hi, p.unit, (p.hi - p.lo) / (p.ramp_ms / 1000.0))
+    params = [ParamInfo(p.name, i, p.value, p.lo, p.hi, p.unit, p.ramp_ms / 1000.0)
               for i, p in enumerate(preset.parameters.values())]
     cells = sheaf.cells
     out_signal = []

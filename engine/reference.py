@@ -58,7 +58,9 @@ class ReferenceStepper:
         n = len(prog.params)
         self.cur = [f32(x.value) for x in prog.params]
         self.tgt = list(self.cur)
-        self.slope = [f32(s) for s in prog.slopes_per_sample()]
+        self.ramp = list(prog.ramp_samples())
+        self.left = [0] * n
+        self.step = [0.0] * n
         self.sustain = False
         self.bend = 0.0
         self.retune = False
@@ -175,7 +177,9 @@ class ReferenceStepper:
                 self.counters["events_ignored"] += 1
                 return
             pi = self.p.params[a]
-            self.tgt[a] = f32(min(pi.hi, max(pi.lo, value)))
+            self.tgt[a] = f32(min(pi.hi, max(pi.lo, f32(value))))
+            self.left[a] = self.ramp[a]
+            self.step[a] = f32((self.tgt[a] - self.cur[a]) / self.ramp[a])
         elif typ == V.EV_BEND:
             if not math.isfinite(value):
                 self.counters["events_ignored"] += 1
@@ -243,17 +247,17 @@ class ReferenceStepper:
     def _segment(self, a: int, b: int, mix: np.ndarray) -> None:
         p = self.p
         n = b - a
-        moving = any(c != t for c, t in zip(self.cur, self.tgt))
+        moving = any(k > 0 for k in self.left)
         traj = []
         for k in range(n):
             if moving:
                 for q in range(self._nparams):
-                    d = self.tgt[q] - self.cur[q]
-                    s = self.slope[q]
-                    if -s <= d <= s:
+                    if self.left[q] > 1:
+                        self.cur[q] = f32(self.cur[q] + self.step[q])
+                        self.left[q] -= 1
+                    elif self.left[q] == 1:
                         self.cur[q] = self.tgt[q]
-                    else:
-                        self.cur[q] = f32(self.cur[q] + (s if d > 0 else -s))
+                        self.left[q] = 0
             traj.append(list(self.cur))
         if moving:
             self.retune = True
