@@ -57,6 +57,7 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
         lens[lp.delay] = n
         if lp.tuner is not None:
             env[f"@tune{lp.index}"] = float(a)
+            env[f"@tunec{lp.index}"] = float(np.sqrt(1.0 - a * a))
     offsets: dict[int, int] = {}
     size: dict[int, int] = {}
     n_s = 0

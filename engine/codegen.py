@@ -92,7 +92,11 @@ class _Coefs:
 class _Ctx:
     def __init__(self, prog: StepProgram, coefs: _Coefs, moving: bool):
         self.prog, self.coefs, self.moving = prog, coefs, moving
-        self.tune_sym = {b.tune_symbol: f"t{b.loop}" for b in prog.blocks if b.tune_symbol}
+        self.tune_sym = {}
+        for b in prog.blocks:
+            if b.tune_symbol:
+                self.tune_sym[f"@tune{b.loop}"] = f"t{b.loop}"
+                self.tune_sym[f"@tunec{b.loop}"] = f"tc{b.loop}"
 
     def coef(self, e: Affine) -> str | None:
         """C float expression for an entry; None when it is exactly zero."""
@@ -160,6 +164,9 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
     for b in prog.blocks:
         if b.tune_symbol:
             w(f"    const float t{b.loop} = v->tune{b.loop};")
+            w(f"    const float tc{b.loop} = v->tunec{b.loop};")
+            w(f"    (void)t{b.loop};")
+            w(f"    (void)tc{b.loop};")
     body: list[str] = []
     o = body.append
 
@@ -294,6 +301,7 @@ def _tune_fn(prog: StepProgram, coefs: _Coefs) -> str:
             w("            if (tau < 0.5) tau = 0.5;")
             w("            if (tau > 1.5) tau = 1.5;")
             w(f"            v->tune{lp.index} = (float)ss_allpass_coef(tau, w);")
+            w(f"            v->tunec{lp.index} = (float)sqrt(1.0 - (double)v->tune{lp.index} * (double)v->tune{lp.index});")
             w("        }")
         w("    }")
     w("    if (v->status == SS_RELEASED) ssk_release_gains(S, v);")
@@ -356,6 +364,7 @@ def generate(prog: StepProgram) -> str:
     for b in prog.blocks:
         if b.tune_symbol:
             w(f"    float tune{b.loop};")
+            w(f"    float tunec{b.loop};")
     for b in prog.blocks:
         if b.is_delay:
             w(f"    float ring{b.index}[{prog.ring_size[b.index]}];")
@@ -400,6 +409,7 @@ def generate(prog: StepProgram) -> str:
     for b in prog.blocks:
         if b.tune_symbol:
             w(f"    v->tune{b.loop} = 0.0f;")
+            w(f"    v->tunec{b.loop} = 1.0f;")
     w("    (void)v;")
     w("}")
     w("")

@@ -266,7 +266,8 @@ def _tuning_loops(sheaf: NetworkSheaf, blocks: list[Block]) -> list[TuningLoop]:
             sym = f"@tune{k}"
             tb.tune_symbol = sym
             tb.loop = k
-            tb.A, tb.B, tb.C, tb.D = (_rename(m, "@tune", sym) for m in (tb.A, tb.B, tb.C, tb.D))
+            for old, new in (("@tune", sym), ("@tunec", f"@tunec{k}")):
+                tb.A, tb.B, tb.C, tb.D = (_rename(m, old, new) for m in (tb.A, tb.B, tb.C, tb.D))
             tuners_used.add(tuner)
         loops.append(TuningLoop(k, b.index, tuner, steps, gains))
     for i, c in enumerate(sheaf.cells):

@@ -85,7 +85,9 @@ class ReferenceStepper:
             n, a = tune_loop(self.p, lp, pitch, env)
             v.lens[lp.delay] = n
             if lp.tuner is not None:
-                v.tune[f"@tune{lp.index}"] = f32(a)
+                k = f32(a)
+                v.tune[f"@tune{lp.index}"] = k
+                v.tune[f"@tunec{lp.index}"] = f32(math.sqrt(1.0 - k * k))
         if v.status == V.RELEASED:
             self._release_gains(v)
 

@@ -9,6 +9,8 @@ coefficients are parameters.
 
 from __future__ import annotations
 
+import math
+
 from ..affine import Affine, AffineMatrix, parse_entry
 from ..errors import PresetError
 from .model import CellModel
@@ -93,20 +95,35 @@ def allpass_coef_for_delay(d: float) -> float:
     return (1.0 - d) / (1.0 + d)
 
 
+def normalized_lattice_allpass(name: str, k: Affine, c: Affine, tune: bool = False) -> CellModel:
+    """First-order allpass (k + z^-1) / (1 + k z^-1) as one normalized lattice section.
+
+    ``[y; s+] = [[k, c], [c, -k]] [x; s]`` with c = sqrt(1 - k^2): the step
+    matrix is orthogonal for every k, so the section's energy never grows
+    even while k moves (Gray & Markel 1975).
+    """
+    A = AffineMatrix.from_rows([[k.scaled(-1.0)]])
+    return CellModel(name, "allpass", 1, 1, A, AffineMatrix.from_rows([[c]]),
+                     AffineMatrix.from_rows([[c]]), AffineMatrix.from_rows([[k]]), tune=tune)
+
+
 def build_allpass(spec: dict, path: str, parameters) -> CellModel:
     has_delay, has_coef = "delay" in spec, "coef" in spec
     if has_delay == has_coef:
         raise PresetError('an allpass needs exactly one of "delay" or "coef"', path)
-    tune = False
+    if not has_coef and spec["delay"] == "pitch-fraction":
+        # k and c = sqrt(1 - k^2) are set per voice from the played pitch;
+        # the symbols are renamed per tuning loop by the lowering.
+        return normalized_lattice_allpass(spec["id"], Affine.symbol("@tune"), Affine.symbol("@tunec"), tune=True)
     if has_coef:
         a = parse_entry(spec["coef"], path + ".coef", parameters)
         if a.is_const and not -1.0 < a.const < 1.0:
             raise PresetError(f"coefficient {a.const:g} must lie inside (-1, 1)", path + ".coef")
-    elif spec["delay"] == "pitch-fraction":
-        a = Affine.symbol("@tune")   # renamed per cell by the lowering
-        tune = True
     else:
         a = Affine.number(allpass_coef_for_delay(float(spec["delay"])))
+    if a.is_const:
+        k = a.const
+        return normalized_lattice_allpass(spec["id"], a, Affine.number(math.sqrt(1.0 - k * k)))
+    # A parameter-dependent coefficient keeps every entry affine: direct form I.
     one = Affine.number(1.0)
-    # (a + z^-1) / (1 + a z^-1)
-    return direct_form_one(spec["id"], "allpass", [a, one], [one, a], tune=tune)
+    return direct_form_one(spec["id"], "allpass", [a, one], [one, a])
