@@ -43,7 +43,7 @@ static void ssk_start(ssk_state *S, ssk_voice *v, int note, int vel) {
     v->quiet = 0;
     v->pos = 0u;
     ssk_voice_reset(v);
-    ssk_tune(S, v);
+    ssk_tune(S, v, 0);
     v->exc_amp = (float)(SSK_EXC_GAIN * (double)vel / 127.0);
     v->exc_y = 0.0f;
     if (SSK_EXC_IMPULSE) {
@@ -123,7 +123,7 @@ static void ssk_event(ssk_state *S, const ss_event *e) {
             if (x < -SSK_MAX_BEND) x = -SSK_MAX_BEND;
             if (x > SSK_MAX_BEND) x = SSK_MAX_BEND;
             S->bend = x;
-            S->retune = 1;
+            S->retune |= 2;   /* pitch moved: choose lengths afresh */
         }
         return;
     case SS_EV_SUSTAIN:
@@ -310,8 +310,9 @@ int sheafsynth_render(void *state, const ss_event *events, int n_events, float *
     if (frames <= 0 || frames > SSK_MAXB) return SS_ERR_FRAMES;
     fp = ss_ftz_enter();
     if (S->retune) {
+        int keep = !(S->retune & 2);   /* knobs only: keep delay lengths while possible */
         for (i = 0; i < SSK_POLY; ++i)
-            if (S->voices[i].status != SS_FREE) ssk_tune(S, &S->voices[i]);
+            if (S->voices[i].status != SS_FREE) ssk_tune(S, &S->voices[i], keep);
         S->retune = 0;
     }
     for (n = 0; n < frames; ++n) S->mix[n] = 0.0f;

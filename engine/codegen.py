@@ -247,9 +247,10 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
 def _tune_fn(prog: StepProgram, coefs: _Coefs) -> str:
     L: list[str] = []
     w = L.append
-    w("static void ssk_tune(ssk_state *S, ssk_voice *v) {")
+    w("static void ssk_tune(ssk_state *S, ssk_voice *v, int keep) {")
     w("    const double pitch = (double)v->note + (double)S->bend;")
     w("    (void)pitch;")
+    w("    (void)keep;")
     for lp in prog.loops:
         d = prog.blocks[lp.delay]
         ring = prog.ring_size[lp.delay]
@@ -289,17 +290,23 @@ def _tune_fn(prog: StepProgram, coefs: _Coefs) -> str:
         w("        need = period - rest;")
         w("        while (need < 1.5) need += period;")
         if lp.tuner is not None:
-            w("        nl = (int32_t)floor(need - 0.5);")
+            w(f"        if (keep && need - (double)v->len{lp.delay} >= 0.02 && need - (double)v->len{lp.delay} <= 1.98)")
+            w(f"            nl = v->len{lp.delay};")
+            w("        else")
+            w("            nl = (int32_t)floor(need - 0.5);")
         else:
-            w("        nl = (int32_t)floor(need + 0.5);")
+            w(f"        if (keep && fabs(need - (double)v->len{lp.delay}) < 1.0)")
+            w(f"            nl = v->len{lp.delay};")
+            w("        else")
+            w("            nl = (int32_t)floor(need + 0.5);")
         w("        if (nl < 1) nl = 1;")
         w(f"        if (nl > {ring - 2}) nl = {ring - 2};")
         w(f"        v->len{lp.delay} = nl;")
         if lp.tuner is not None:
             w("        {")
             w("            double tau = need - (double)nl;")
-            w("            if (tau < 0.5) tau = 0.5;")
-            w("            if (tau > 1.5) tau = 1.5;")
+            w("            if (tau < 0.02) tau = 0.02;")
+            w("            if (tau > 1.98) tau = 1.98;")
             w(f"            v->tune{lp.index} = (float)ss_allpass_coef(tau, w);")
             w(f"            v->tunec{lp.index} = (float)sqrt(1.0 - (double)v->tune{lp.index} * (double)v->tune{lp.index});")
             w("        }")

@@ -63,7 +63,8 @@ class ReferenceStepper:
         self.step = [0.0] * n
         self.sustain = False
         self.bend = 0.0
-        self.retune = False
+        self.retune = False          # knobs moved: retune, keeping delay lengths where possible
+        self.retune_full = False     # pitch bend moved: retune from scratch
         self.started = 0
         self.lim_g = 1.0
         self.lim_rel = 1.0 - math.exp(-1.0 / (LIMITER_RELEASE_S * prog.rate))
@@ -78,11 +79,11 @@ class ReferenceStepper:
         e = {p.name: values[p.index] for p in self.p.params}
         return e
 
-    def _tune(self, v: _Voice) -> None:
+    def _tune(self, v: _Voice, keep: bool = False) -> None:
         env = self._env(self.cur)
         pitch = v.note + self.bend
         for lp in self.p.loops:
-            n, a = tune_loop(self.p, lp, pitch, env)
+            n, a = tune_loop(self.p, lp, pitch, env, v.lens[lp.delay] if keep else None)
             v.lens[lp.delay] = n
             if lp.tuner is not None:
                 k = f32(a)
@@ -187,7 +188,7 @@ class ReferenceStepper:
                 self.counters["events_ignored"] += 1
                 return
             self.bend = f32(min(MAX_BEND_SEMITONES, max(-MAX_BEND_SEMITONES, value)))
-            self.retune = True
+            self.retune_full = True
         elif typ == V.EV_SUSTAIN:
             self.sustain = b != 0
             if not self.sustain:
@@ -225,11 +226,11 @@ class ReferenceStepper:
             raise ValueError(f"frames must be in 1..{p.max_block}")
         evs = sorted(((min(max(int(e[0]), 0), frames - 1),) + tuple(e[1:]) for e in events),
                      key=lambda e: e[0])
-        if self.retune:
+        if self.retune or self.retune_full:
             for v in self.voices:
                 if v.status != V.FREE:
-                    self._tune(v)
-            self.retune = False
+                    self._tune(v, keep=not self.retune_full)
+            self.retune = self.retune_full = False
         mix = np.zeros(frames)
         for v in self.voices:
             v.peak = 0.0

@@ -24,7 +24,8 @@ import numpy as np
 
 from .lower import StepProgram, TuningLoop, note_hz
 
-TAU_MIN = 0.5   # allpass fraction range [0.5, 1.5): keeps |a| <= 1/3 near DC
+TAU_MIN = 0.5   # allpass fraction range [0.5, 1.5) when a length is chosen
+KEEP_LO, KEEP_HI = 0.02, 1.98   # a knob may move the fraction this far before the length changes
 
 
 def block_response(prog: StepProgram, bi: int, in_port: int, out_port: int,
@@ -61,11 +62,15 @@ def loop_frequency(prog: StepProgram, loop: TuningLoop, pitch: float) -> float:
 
 
 def tune_loop(prog: StepProgram, loop: TuningLoop, pitch: float,
-              env: Mapping[str, float]) -> tuple[int, float | None]:
+              env: Mapping[str, float], keep_len: int | None = None) -> tuple[int, float | None]:
     """(delay length in samples, allpass coefficient or None) for ``pitch``.
 
     ``pitch`` is the MIDI note plus bend in semitones; ``env`` maps every
-    parameter name to its current value.
+    parameter name to its current value.  With ``keep_len`` (a retune after
+    a knob moved) the length is kept while the fraction stays inside
+    [KEEP_LO, KEEP_HI] (or, without an allpass, while the rounding error
+    stays under one sample): knob motion then never changes a delay length,
+    which is what lets the stability proof treat delays as fixed (engine.analysis).
     """
     f = loop_frequency(prog, loop, pitch)
     period = prog.rate / f
@@ -86,13 +91,18 @@ def tune_loop(prog: StepProgram, loop: TuningLoop, pitch: float,
     while need < 1.0 + TAU_MIN:
         need += period
     max_len = prog.ring_size[loop.delay] - 2
+    if keep_len is not None:
+        if loop.tuner is None and abs(need - keep_len) < 1.0:
+            return keep_len, None
+        if loop.tuner is not None and KEEP_LO <= need - keep_len <= KEEP_HI:
+            return keep_len, allpass_coef(need - keep_len, omega)
     if loop.tuner is None:
         n = int(math.floor(need + 0.5))
         return max(1, min(max_len, n)), None
     n = int(math.floor(need - TAU_MIN))
     n = max(1, min(max_len, n))
     tau = need - n
-    tau = min(max(tau, TAU_MIN), TAU_MIN + 1.0)
+    tau = min(max(tau, KEEP_LO), KEEP_HI)
     return n, allpass_coef(tau, omega)
 
 
