@@ -10,7 +10,9 @@
  *   ssk_param_lo[], ssk_param_hi[], ssk_param_def[], ssk_param_ramp[] (samples),
  *   ssk_voice (starting with SS_VOICE_COMMON), ssk_state (starting with SS_STATE_COMMON),
  *   ssk_voice_reset, ssk_tune, ssk_release_gains, ssk_coef_static, ssk_coef_traj,
- *   ssk_voice_render.
+ *   ssk_voice_render (returns the segment's peak |out|, or -1 when a sample
+ *   was non-finite or beyond SSK_GUARD: the guard runs inside the loop),
+ *   ssk_voice_prefetch (a cache hint for the voice rendered next).
  *
  * The life cycle and every number match engine/voicing.py and
  * engine/reference.py (the oracle the kernel is tested against).
@@ -187,12 +189,11 @@ static void ssk_segment(ssk_state *S, int a, int b) {
         float peak = 0.0f;
         int bad = 0;
         if (v->status == SS_FREE) continue;
-        ssk_voice_render(S, v, S->scratch, a, b, moving);
-        for (n = a; n < b; ++n) {
-            float x = fabsf(S->scratch[n]);
-            if (!(x <= (float)SSK_GUARD)) { bad = 1; break; }
-            if (x > peak) peak = x;
-        }
+        /* with many voices the next ones are not in cache: ask for them early */
+        if (i + 2 < SSK_POLY) SS_PREFETCH(&S->voices[i + 2], 0);
+        if (i + 1 < SSK_POLY && S->voices[i + 1].status != SS_FREE) ssk_voice_prefetch(&S->voices[i + 1], b - a);
+        peak = ssk_voice_render(S, v, S->scratch, a, b, moving);
+        bad = !(peak >= 0.0f);
         if (bad) {
             S->counters.guard_resets++;
             ssk_clear(v);
@@ -229,6 +230,7 @@ static void ssk_housekeeping(ssk_state *S, int frames) {
             }
         }
         if (v->status != SS_FREE) active++;
+        v->peak = 0.0f;         /* the next block's peak (one pass over the pool fewer) */
     }
     S->counters.voices_active = active;
 }
@@ -316,7 +318,7 @@ int sheafsynth_render(void *state, const ss_event *events, int n_events, float *
         S->retune = 0;
     }
     for (n = 0; n < frames; ++n) S->mix[n] = 0.0f;
-    for (i = 0; i < SSK_POLY; ++i) S->voices[i].peak = 0.0f;
+    /* every voice's peak is 0 here: ssk_start and ssk_housekeeping reset it */
     i = 0;
     while (i < frames) {
         int next;

@@ -24,6 +24,13 @@
 #define SS_HAVE_MXCSR 1
 #endif
 
+/* Cache hint (no effect on results): w = 1 when the line will be written. */
+#if defined(__GNUC__) || defined(__clang__)
+#define SS_PREFETCH(p, w) __builtin_prefetch((p), (w), 3)
+#else
+#define SS_PREFETCH(p, w) ((void)(p))
+#endif
+
 /* ---- voice life cycle (engine/voicing.py) and the common struct heads ---- */
 
 #define SS_FREE      0
@@ -209,16 +216,39 @@ static inline void ss_limiter_init(ss_limiter *L, double rate, double release_s,
     L->on = 1;
 }
 
+/* Largest |x[i]| over n samples (a NaN never wins), on 8 running maxima. */
+static inline float ss_peak(const float *x, int n) {
+    float p[8] = {0.0f, 0.0f, 0.0f, 0.0f, 0.0f, 0.0f, 0.0f, 0.0f};
+    int i = 0, k;
+    for (; i + 8 <= n; i += 8)
+        for (k = 0; k < 8; ++k) {
+            const float a = fabsf(x[i + k]);
+            p[k] = a > p[k] ? a : p[k];
+        }
+    for (; i < n; ++i) {
+        const float a = fabsf(x[i]);
+        p[0] = a > p[0] ? a : p[0];
+    }
+    for (k = 1; k < 8; ++k) p[0] = p[k] > p[0] ? p[k] : p[0];
+    return p[0];
+}
+
 /* Limit n samples in place; returns the peak after limiting. */
 static inline float ss_limiter_run(ss_limiter *L, float *x, int n) {
     float g = L->gain, c = L->ceiling, peak = 0.0f;
     int i;
-    if (!L->on) {
-        for (i = 0; i < n; ++i) {
-            float a = fabsf(x[i]);
-            if (a > peak) peak = a;
+    if (!L->on) return ss_peak(x, n);
+    /* The gain at rest (1, or as near 1 as the release step still moves it:
+     * the step below leaves it unchanged) and no sample reaching the ceiling:
+     * the loop below would scale by g and touch nothing else, so skip its
+     * sample-by-sample gain recursion.  Same samples, same peak. */
+    if (g + (1.0f - g) * L->release == g) {
+        const float p = ss_peak(x, n);
+        if (!(p * g > c)) {
+            if (g != 1.0f)
+                for (i = 0; i < n; ++i) x[i] *= g;
+            return p * g;
         }
-        return peak;
     }
     for (i = 0; i < n; ++i) {
         float a = fabsf(x[i]);

@@ -24,6 +24,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .lower import StepProgram
+from .fieldprog import assemble_block
 from .tuning import tune_all
 
 
@@ -65,6 +66,8 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
         offsets[b.index] = n_s
         if b.is_delay:
             size[b.index] = lens.get(b.index, b.delay_length)
+        elif b.is_field:
+            size[b.index] = 2 * b.field.n_dof          # [u; u_prev]
         else:
             size[b.index] = b.n_state
         n_s += size[b.index]
@@ -80,6 +83,7 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
     Cb = sp.lil_matrix((n_sig, n_s))       # signals from states
     Db = np.zeros((n_sig, n_u))            # signals from inputs (feedthrough)
     W = np.zeros((n_u, n_sig))             # inputs from signals
+    field_A: list = []                     # (offset, sparse block) of field cells
     for b in prog.blocks:
         o, k, ui = offsets[b.index], size[b.index], in_off[b.index]
         if b.is_delay:
@@ -87,6 +91,13 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
             for i in range(1, k):
                 Ab[o + i, o + i - 1] = 1.0
             Cb[b.out_signal, o + k - 1] = 1.0
+        elif b.is_field:
+            fa, fb, fc = assemble_block(b.field, env, pitch, prog.rate)
+            field_A.append((o, fa))
+            for r, c in zip(*fb.nonzero()):
+                Bb[o + r, ui + c] = fb[r, c]
+            for r, c in zip(*fc.nonzero()):
+                Cb[b.out_signal + r, o + c] = fc[r, c]
         else:
             A, B, C, D = (m.value(env) for m in (b.A, b.B, b.C, b.D))
             if k:
@@ -105,7 +116,7 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
     M = np.linalg.inv(np.eye(n_sig) - Db @ W)     # small: one row per cell output
     Cb = Cb.tocsr()
     WM = sp.csr_matrix(W @ M)
-    A_cl = (Ab.tocsr() + Bb.tocsr() @ WM @ Cb).tocsr()
+    A_cl = (Ab.tocsr() + _placed(field_A, n_s) + Bb.tocsr() @ WM @ Cb).tocsr()
     B_cl = sp.csr_matrix(Bb.tocsr() @ (W @ M @ E))
     C_cl = sp.csr_matrix(sp.csr_matrix(wout @ M) @ Cb)
     D_cl = wout @ M @ E
@@ -114,6 +125,15 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
     return LinearSystem(A_cl, B_cl, C_cl, D_cl, part, prog.rate, float(pitch),
                         {p.name: env[p.name] for p in prog.params},
                         {prog.blocks[i].name: n for i, n in lens.items()})
+
+
+def _placed(blocks, n: int) -> sp.csr_matrix:
+    """Sum of square sparse blocks placed on the diagonal at their offsets (n x n)."""
+    out = sp.csr_matrix((n, n))
+    for o, blk in blocks:
+        c = sp.coo_matrix(blk)
+        out = out + sp.csr_matrix((c.data, (c.row + o, c.col + o)), shape=(n, n))
+    return out
 
 
 def impulse_response(sysm: LinearSystem, n: int) -> np.ndarray:

@@ -19,6 +19,7 @@ import math
 import numpy as np
 
 from .affine import Affine
+from . import fieldgen as FG
 from .errors import BuildError
 from .lower import (GUARD_LIMIT, HELD_QUIET_S, LIMITER_RELEASE_S, MAX_BEND_SEMITONES, RAMP_FADE_S,
                     SILENCE_HELD, SILENCE_RELEASED, StepProgram)
@@ -140,12 +141,42 @@ def _sig(i: int) -> str:
     return f"x{i}"
 
 
+def _ring_mask(prog: StepProgram, b) -> str:
+    """Index mask of delay block ``b``'s ring: per voice for pitch delays (ssk_voice_reset)."""
+    return f"m{b.index}" if b.pitch else f"{prog.ring_size[b.index] - 1}u"
+
+
+def _loop_slack(prog: StepProgram, b) -> float:
+    """Upper bound of (pitch delay length) / period for the tuning loop through ``b``.
+
+    engine.tuning: length = period - rest, and rest loses at most half a
+    period per filter on the loop (a phase delay -arg H / w with |arg H| <= pi)
+    and per wire gain that can be negative; fixed delays only add to rest.
+    """
+    lp = prog.loops[b.loop] if b.loop is not None else None
+    if lp is None:
+        return 1.0
+    k = sum(1 for st in lp.steps if st.block != lp.tuner and not prog.blocks[st.block].is_delay)
+    rng = {p.name: (p.lo, p.hi) for p in prog.params}
+    for g in lp.gains:
+        lo = g.const
+        for sym, c in g.terms:
+            if sym not in rng:
+                lo = -1.0
+                break
+            lo += min(c * rng[sym][0], c * rng[sym][1])
+        if lo < 0.0:
+            k += 1
+    return 1.0 + 0.5 * k
+
+
 def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
     """One specialised sample loop for a voice over [a, b)."""
     L: list[str] = []
     w = L.append
-    w(f"static void {name}(ssk_state *S, ssk_voice *v, float *out, int a, int b) {{")
+    w(f"static float {name}(ssk_state *S, ssk_voice *v, float *out, int a, int b) {{")
     w("    int n;")
+    w("    float gpk = 0.0f, gsum = 0.0f;")
     w("    uint32_t pos = v->pos;")
     w("    int32_t fade = v->fade_left;")
     w("    uint32_t rng = v->rng;")
@@ -156,6 +187,8 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
     for b in prog.blocks:
         if b.is_delay:
             w(f"    float *r{b.index} = v->ring{b.index};")
+            if b.pitch:
+                w(f"    const uint32_t m{b.index} = v->mask{b.index};")
             w(f"    const uint32_t l{b.index} = (uint32_t)v->len{b.index};")
             w(f"    const float g{b.index} = v->relg{b.index};")
         else:
@@ -167,28 +200,40 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
             w(f"    const float tc{b.loop} = v->tunec{b.loop};")
             w(f"    (void)t{b.loop};")
             w(f"    (void)tc{b.loop};")
+    for b in prog.blocks:
+        if b.is_field:
+            L.extend(FG.loop_locals(b))
     body: list[str] = []
     o = body.append
+    # body line -> the same line without the excitation's terms, for the loop
+    # after the excitation has ended (x0 is 0 there; only a zero's sign differs)
+    quiet: dict[int, str] = {}
+
+    def sum_line(head: str, terms) -> None:
+        o(f"{head}{_dot([(ctx.coef(t.gain), _sig(t.signal)) for t in terms])};")
+        if any(t.signal == 0 for t in terms):
+            quiet[len(body) - 1] = f"{head}{_dot([(ctx.coef(t.gain), _sig(t.signal)) for t in terms if t.signal != 0])};"
 
     def gather(blk) -> None:
         for p, port in enumerate(blk.inputs):
-            o(f"        const float u{blk.index}_{p} = "
-              f"{_dot([(ctx.coef(t.gain), _sig(t.signal)) for t in port])};")
+            sum_line(f"        const float u{blk.index}_{p} = ", port)
+            o(f"        (void)u{blk.index}_{p};")   # an input no state or output reads
 
-    o("        float x0 = 0.0f;")
-    o("        if (exl > 0) {")
+    # The excitation gets a loop of its own (the samples while exc_left > 0),
+    # so the sustained loop carries no branch; x0 has the same value as in
+    # a single loop with the test inside.
     if prog.excitation.get("kind", "noise") == "impulse":
-        o("            x0 = exa;")
+        exc_on = ["        const float x0 = exa;"]
     else:
-        o("            rng = ss_xorshift32(rng);")
-        o("            exy = (1.0f - exq) * ss_noise_value(rng) + exq * exy;")
-        o("            x0 = exa * exy;")
-    o("            exl--;")
-    o("        }")
+        exc_on = ["        rng = ss_xorshift32(rng);",
+                  "        exy = (1.0f - exq) * ss_noise_value(rng) + exq * exy;",
+                  "        const float x0 = exa * exy;"]
+    exc_off = ["        const float x0 = 0.0f;"]
     for b in prog.blocks:
         if b.is_delay:
-            mask = prog.ring_size[b.index] - 1
-            o(f"        const float {_sig(b.out_signal)} = r{b.index}[(pos - l{b.index}) & {mask}u];")
+            o(f"        const float {_sig(b.out_signal)} = r{b.index}[(pos - l{b.index}) & {_ring_mask(prog, b)}];")
+        elif b.is_field:
+            body.extend(FG.output_lines(ctx, b, num))
         elif not b.feedthrough:
             for r in range(b.n_out):
                 pairs = [(ctx.coef(b.C[r, j]), f"s{b.index}_{j}") for j in range(b.n_state)]
@@ -200,13 +245,16 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
             pairs = [(ctx.coef(b.D[r, p]), f"u{bi}_{p}") for p in range(b.n_in)]
             pairs += [(ctx.coef(b.C[r, j]), f"s{bi}_{j}") for j in range(b.n_state)]
             o(f"        const float {_sig(b.out_signal + r)} = {_dot(pairs)};")
+    if prog.n_signals > 1:   # a cell output no wire reads is legal
+        o("        " + " ".join(f"(void){_sig(k)};" for k in range(1, prog.n_signals)))
     for b in prog.blocks:
         if not b.feedthrough:
             gather(b)
     for b in prog.blocks:
         if b.is_delay:
-            mask = prog.ring_size[b.index] - 1
-            o(f"        r{b.index}[pos & {mask}u] = u{b.index}_0 * g{b.index};")
+            o(f"        r{b.index}[pos & {_ring_mask(prog, b)}] = u{b.index}_0 * g{b.index};")
+        elif b.is_field:
+            body.extend(FG.update_lines(ctx, b, num))
         elif b.n_state:
             o("        {")
             for i in range(b.n_state):
@@ -217,18 +265,41 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
                 o(f"            s{b.index}_{i} = q{i};")
             o("        }")
     o("        pos++;")
-    o(f"        float y = {_dot([(ctx.coef(t.gain), _sig(t.signal)) for t in prog.out_terms])};")
-    o("        if (fade >= 0) {")
-    o("            y *= (float)fade * S->inv_fade;")
-    o("            if (fade > 0) fade--;")
-    o("        }")
+    sum_line("        const float y = ", prog.out_terms)
     o("        out[n] = y;")
+    # the guard, folded in: peak |y| (a NaN never wins the max) and a running
+    # sum that turns non-finite exactly when some y is (|y| <= SSK_GUARD otherwise)
+    o("        {")
+    o("            const float ay = fabsf(y);")
+    o("            gpk = ay > gpk ? ay : gpk;")
+    o("            gsum += y;")
+    o("        }")
     # coefficient locals for the static loop (after body so slots are known)
     if not ctx.moving:
         for k in range(len(ctx.coefs.exprs)):
             w(f"    const float c{k} = S->cval[{k}];")
-    w("    for (n = a; n < b; ++n) {")
-    L.extend(body)
+    w("    {")
+    w("        const int stop = exl <= 0 ? a : (exl < b - a ? a + exl : b);")
+    w("        exl -= stop - a;")
+    body_quiet = [quiet.get(i, ln) for i, ln in enumerate(body)]
+    for lo, hi, exc_lines, lines in (("a", "stop", exc_on, body), ("stop", "b", exc_off, body_quiet)):
+        w(f"        for (n = {lo}; n < {hi}; ++n) {{")
+        L.extend("    " + ln for ln in exc_lines + ["        (void)x0;"] + lines)
+        w("        }")
+    w("    }")
+    # a fading voice (steal, all sound off): the fade applies after the loop,
+    # and the guard looks at the faded samples
+    w("    if (fade >= 0) {")
+    w("        gpk = 0.0f;")
+    w("        gsum = 0.0f;")
+    w("        for (n = a; n < b; ++n) {")
+    w("            float ay;")
+    w("            out[n] *= (float)fade * S->inv_fade;")
+    w("            if (fade > 0) fade--;")
+    w("            ay = fabsf(out[n]);")
+    w("            gpk = ay > gpk ? ay : gpk;")
+    w("            gsum += out[n];")
+    w("        }")
     w("    }")
     w("    v->pos = pos;")
     w("    v->fade_left = fade;")
@@ -239,7 +310,11 @@ def _voice_loop(prog: StepProgram, ctx: _Ctx, name: str) -> str:
         if not b.is_delay:
             for j in range(b.n_state):
                 w(f"    v->st{b.index}[{j}] = s{b.index}_{j};")
+    for b in prog.blocks:
+        if b.is_field:
+            L.extend(FG.save_lines(b))
     w("    (void)S;")
+    w("    return (gpk <= (float)SSK_GUARD && isfinite(gsum)) ? gpk : -1.0f;")
     w("}")
     return "\n".join(L)
 
@@ -259,6 +334,7 @@ def _tune_fn(prog: StepProgram, coefs: _Coefs) -> str:
           f"pow(2.0, {dnum(d.pitch_cents)} / 1200.0);")
         w("        const double period = SSK_RATE / f;")
         w("        const double w = 2.0 * 3.14159265358979323846 * f / SSK_RATE;")
+        w("        (void)w;")
         w("        double rest = 0.0, need;")
         w("        int32_t nl;")
         for st in lp.steps:
@@ -301,6 +377,7 @@ def _tune_fn(prog: StepProgram, coefs: _Coefs) -> str:
             w("            nl = (int32_t)floor(need + 0.5);")
         w("        if (nl < 1) nl = 1;")
         w(f"        if (nl > {ring - 2}) nl = {ring - 2};")
+        w(f"        if (nl > (int32_t)v->mask{lp.delay} - 1) nl = (int32_t)v->mask{lp.delay} - 1;  /* never: see ssk_voice_reset */")
         w(f"        v->len{lp.delay} = nl;")
         if lp.tuner is not None:
             w("        {")
@@ -311,6 +388,9 @@ def _tune_fn(prog: StepProgram, coefs: _Coefs) -> str:
             w(f"            v->tunec{lp.index} = (float)sqrt(1.0 - (double)v->tune{lp.index} * (double)v->tune{lp.index});")
             w("        }")
         w("    }")
+    for b in prog.blocks:
+        if b.is_field:
+            L.extend(FG.tune_lines(b, dnum, coefs))
     w("    if (v->status == SS_RELEASED) ssk_release_gains(S, v);")
     w("}")
     return "\n".join(L)
@@ -360,12 +440,19 @@ def generate(prog: StepProgram) -> str:
     ramps = [str(n) for n in prog.ramp_samples()] or ["1"]
     w(f"static const int32_t ssk_param_ramp[{len(ramps)}] = {{{', '.join(ramps)}}};")
     w("")
+    for b in prog.blocks:
+        if b.is_field:
+            L.extend(FG.tables(b, num, dnum))
     w("typedef struct ssk_voice {")
     w("    SS_VOICE_COMMON")
     for b in prog.blocks:
         if b.is_delay:
             w(f"    int32_t len{b.index};")
             w(f"    float relg{b.index};")
+            if b.pitch:
+                w(f"    uint32_t mask{b.index};     /* ring size - 1 for the playing note */")
+        elif b.is_field:
+            L.extend(FG.voice_scalars(b))
         elif b.n_state:
             w(f"    float st{b.index}[{b.n_state}];")
     for b in prog.blocks:
@@ -375,6 +462,8 @@ def generate(prog: StepProgram) -> str:
     for b in prog.blocks:
         if b.is_delay:
             w(f"    float ring{b.index}[{prog.ring_size[b.index]}];")
+        elif b.is_field:
+            L.extend(FG.voice_arrays(b))
     w("} ssk_voice;")
     w("")
     w("typedef struct ssk_state {")
@@ -386,6 +475,9 @@ def generate(prog: StepProgram) -> str:
     w(f"    float ctraj[{max(1, ncoef)}][SSK_MAXB];")
     w("    float mix[SSK_MAXB];")
     w("    float scratch[SSK_MAXB];")
+    for b in prog.blocks:
+        if b.is_field:
+            L.extend(FG.state_members(b))
     w("    ssk_voice voices[SSK_POLY];")
     w("} ssk_state;")
     w("")
@@ -408,11 +500,28 @@ def generate(prog: StepProgram) -> str:
     w("static void ssk_voice_reset(ssk_voice *v) {")
     for b in prog.blocks:
         if b.is_delay:
-            w(f"    memset(v->ring{b.index}, 0, sizeof(v->ring{b.index}));")
+            if b.pitch:
+                # Per note the ring covers the longest loop any bend (+-SSK_MAX_BEND)
+                # and parameter value can ask for (_loop_slack), so a short note's
+                # voice touches a small ring: same output, less memory traffic.
+                w("    {")
+                w(f"        const double pmax = SSK_RATE / (ss_note_hz((double)v->note - (double)SSK_MAX_BEND) * "
+                  f"{dnum(b.pitch_ratio)} * pow(2.0, {dnum(b.pitch_cents)} / 1200.0));")
+                w(f"        double need = pmax * {dnum(_loop_slack(prog, b))};")
+                w("        uint32_t size = 4u;")
+                w("        if (need < pmax + 1.5) need = pmax + 1.5;")
+                w(f"        while (size < {prog.ring_size[b.index]}u && (double)size < need + 2.5) size <<= 1;")
+                w(f"        v->mask{b.index} = size - 1u;")
+                w(f"        memset(v->ring{b.index}, 0, size * sizeof(float));")
+                w("    }")
+            else:
+                w(f"    memset(v->ring{b.index}, 0, sizeof(v->ring{b.index}));")
             w(f"    v->len{b.index} = {int(b.delay_length) if not b.pitch else 1};")
             w(f"    v->relg{b.index} = 1.0f;")
         elif b.n_state:
             w(f"    memset(v->st{b.index}, 0, sizeof(v->st{b.index}));")
+        elif b.is_field:
+            L.extend(FG.reset_lines(b))
     for b in prog.blocks:
         if b.tune_symbol:
             w(f"    v->tune{b.loop} = 0.0f;")
@@ -426,15 +535,33 @@ def generate(prog: StepProgram) -> str:
     for b in prog.blocks:
         if b.is_delay:
             w(f"    v->relg{b.index} = (float)pow(SSK_RELEASE_DECAY, (double)v->len{b.index} / period);")
+        elif b.is_field:
+            L.extend(FG.release_lines(b, dnum))
     w("}")
     w("")
     w(_tune_fn(prog, coefs))
     w("")
     L.extend(loops)
     w("")
-    w("static void ssk_voice_render(ssk_state *S, ssk_voice *v, float *out, int a, int b, int moving) {")
-    w("    if (moving) ssk_vr_moving(S, v, out, a, b);")
-    w("    else ssk_vr_static(S, v, out, a, b);")
+    # The pool calls this for the next voice while it renders the current one,
+    # so that voice's ring windows (read and write) are in cache when its loop
+    # starts: with thousands of voices they are not (a hint only, no effect on output).
+    w("static void ssk_voice_prefetch(const ssk_voice *v, int n) {")
+    w("    uint32_t q;")
+    w("    for (q = 0; q < (uint32_t)n + 16u; q += 16u) {")
+    for blk in prog.blocks:
+        if blk.is_delay:
+            m = f"v->mask{blk.index}" if blk.pitch else f"{prog.ring_size[blk.index] - 1}u"
+            w(f"        SS_PREFETCH(&v->ring{blk.index}[(v->pos + q) & {m}], 1);")
+            w(f"        SS_PREFETCH(&v->ring{blk.index}[(v->pos - (uint32_t)v->len{blk.index} + q) & {m}], 0);")
+    w("    }")
+    w("    (void)v;")
+    w("}")
+    w("")
+    w("/* Render [a, b) of one voice into out; returns max |out| over [a, b), or -1")
+    w("   when a sample was non-finite or beyond SSK_GUARD (the pool's guard). */")
+    w("static float ssk_voice_render(ssk_state *S, ssk_voice *v, float *out, int a, int b, int moving) {")
+    w("    return moving ? ssk_vr_moving(S, v, out, a, b) : ssk_vr_static(S, v, out, a, b);")
     w("}")
     w("")
     w('#include "ss_kernel_pool.h"')

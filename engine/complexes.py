@@ -137,6 +137,7 @@ CONSISTENCY = ("refuse", "report")
 
 DENSE_LIMIT = 600        # DOFs up to which spectra are computed densely
 STABILITY_RTOL = 1e-12   # relative slack in the <= 4 tests (rounding only)
+MAX_VERTICES = 16384     # per complex: bounds load time and per-voice state (128 x 128 grid)
 
 
 # --------------------------------------------------------------------------
@@ -157,6 +158,11 @@ def _int_at_least(x, low: int, path: str, what: str) -> int:
     if x < low:
         raise PresetError(f"{what} must be at least {low}, got {x}", path)
     return int(x)
+
+
+def _vertex_cap(nv: int, path: str) -> None:
+    if nv > MAX_VERTICES:
+        raise PresetError(f"{nv} vertices; a field has at most {MAX_VERTICES}", path)
 
 
 def _index(x, n: int, path: str, what: str) -> int:
@@ -284,6 +290,7 @@ def _make_face(edges: np.ndarray, loop: Sequence[int], path: str) -> Face:
 def path_complex(n: int, wrap: str = "none", path: str = "complex") -> CellComplex:
     """Path of ``n`` vertices (``wrap="ring"`` closes it with seam edge n-1)."""
     n = _int_at_least(n, 2, f"{path}.path", "path length")
+    _vertex_cap(n, f"{path}.path")
     if wrap not in PATH_WRAPS:
         raise PresetError(f"must be one of {', '.join(PATH_WRAPS)} for a path, got {wrap!r}",
                           f"{path}.wrap")
@@ -307,6 +314,7 @@ def grid_complex(m: int, n: int, wrap: str = "none", path: str = "complex") -> C
     """M x N grid, vertex (i, j) = i*N + j, with square faces (see module doc)."""
     m = _int_at_least(m, 2, f"{path}.grid[0]", "grid size")
     n = _int_at_least(n, 2, f"{path}.grid[1]", "grid size")
+    _vertex_cap(m * n, f"{path}.grid")
     if wrap not in GRID_WRAPS:
         raise PresetError(f"must be one of {', '.join(GRID_WRAPS)} for a grid, got {wrap!r}",
                           f"{path}.wrap")
@@ -361,6 +369,7 @@ def explicit_complex(spec: dict, path: str = "complex") -> CellComplex:
     """Complex from ``{"vertices": V, "edges": [...], "faces": [...], "rim": [...]}``."""
     _no_extra_keys(spec, ("vertices", "edges", "faces", "rim"), path)
     nv = _int_at_least(spec["vertices"], 2, f"{path}.vertices", "vertex count")
+    _vertex_cap(nv, f"{path}.vertices")
     raw_edges = spec.get("edges")
     if not isinstance(raw_edges, list) or not raw_edges:
         raise PresetError("must be a non-empty list of [i, j] pairs", f"{path}.edges")

@@ -43,8 +43,12 @@ class Instrument:
     """A compiled preset with note, control and block-processing calls."""
 
     def __init__(self, preset, *, rate: float = 48000, max_block: int = 512, seed: int = 0,
-                 polyphony: int | None = None, limiter: bool = True, strict: bool = False):
+                 polyphony: int | None = None, limiter: bool = True, strict: bool = False,
+                 min_ramp_s: dict[str, float] | None = None):
+        """``min_ramp_s``: per-parameter ramp times (s) a stability certificate
+        requires; the host passes engine.analysis.ramp_limits(preset) here."""
         self.preset: Preset = load_preset(preset)
+        self._min_ramp_s = dict(min_ramp_s or {})
         self._seed = int(seed) & 0xFFFFFFFF
         self._polyphony = polyphony
         self._limiter = bool(limiter)
@@ -61,7 +65,8 @@ class Instrument:
         if not (8000 <= float(rate) <= 192000):
             raise PresetError(f"sample rate {rate!r} Hz is outside 8000..192000", "rate")
         values = self.values if hasattr(self, "_mod") else None
-        self.program: StepProgram = lower(self.preset, float(rate), int(max_block), self._polyphony)
+        self.program: StepProgram = lower(self.preset, float(rate), int(max_block), self._polyphony,
+                                          self._min_ramp_s)
         self.source = generate(self.program)
         self._mod = compile_module(CDEF, self.source, tag="k", strict=self._strict)
         ffi, lib = self._mod.ffi, self._mod.lib

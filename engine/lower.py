@@ -88,18 +88,24 @@ class Block:
     pitch_cents: float = 0.0
     tune_symbol: str | None = None       # "@tune0" for a pitch-fraction allpass
     loop: int | None = None              # tuning loop this delay / allpass belongs to
+    field: object = None                 # field cells: engine.fieldprog.FieldProgram
 
     @property
     def is_delay(self) -> bool:
         return self.kind == "delay"
 
     @property
+    def is_field(self) -> bool:
+        return self.field is not None
+
+    @property
     def n_state(self) -> int:
-        return 0 if self.is_delay else self.A.rows
+        """Small dense states (delays and fields keep theirs in buffers)."""
+        return 0 if self.is_delay or self.is_field else self.A.rows
 
     @property
     def feedthrough(self) -> bool:
-        return not self.is_delay and not self.D.is_zero
+        return not self.is_delay and not self.is_field and not self.D.is_zero
 
 
 @dataclass(frozen=True)
@@ -166,13 +172,19 @@ def note_hz(note: float) -> float:
     return A4_HZ * 2.0 ** ((note - MIDI_A4) / 12.0)
 
 
-def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int | None = None) -> StepProgram:
-    """Lower a validated preset to its step program at ``rate`` Hz."""
+def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int | None = None,
+          min_ramp_s: dict[str, float] | None = None) -> StepProgram:
+    """Lower a validated preset to its step program at ``rate`` Hz.
+
+    ``min_ramp_s`` lengthens parameter ramps (seconds per change) where a
+    ramp-limited stability certificate needs it (engine.analysis.ramp_limits).
+    """
     if rate not in (22050.0, 32000.0, 44100.0, 48000.0, 88200.0, 96000.0, 192000.0):
         if not (8000.0 <= rate <= 192000.0):
             raise PresetError(f"sample rate {rate:g} Hz is outside 8000..192000", "rate")
     sheaf: NetworkSheaf = preset.sheaf
-    params = [ParamInfo(p.name, i, p.value, p.lo, p.hi, p.unit, p.ramp_ms / 1000.0)
+    min_ramp_s = min_ramp_s or {}
+    params = [ParamInfo(p.name, i, p.value, p.lo, p.hi, p.unit, max(p.ramp_ms / 1000.0, min_ramp_s.get(p.name, 0.0)))
               for i, p in enumerate(preset.parameters.values())]
     cells = sheaf.cells
     out_signal = []
@@ -211,15 +223,37 @@ def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int |
     for b in blocks:
         if b.is_delay:
             prog.ring_size[b.index] = _ring_size(b, prog)
+    _check_voice_memory(prog)
+    if any(b.is_field for b in blocks):
+        from .fieldprog import finish_fields
+
+        finish_fields(prog, preset)
     return prog
 
 
 def _block(i: int, c: CellModel, out_sig: int, inputs: list[list[Term]]) -> Block:
+    if c.kind == "field":
+        from .fieldprog import lower_field
+
+        return Block(i, c.name, "field", c.n_in, c.n_out, out_sig, inputs, field=lower_field(c))
     if c.delay is not None:
         d = c.delay
         return Block(i, c.name, "delay", 1, 1, out_sig, inputs, delay_length=d.length,
                      pitch=d.pitch, pitch_ratio=d.ratio, pitch_cents=d.cents)
     return Block(i, c.name, c.kind, c.n_in, c.n_out, out_sig, inputs, c.A, c.B, c.C, c.D)
+
+
+MAX_VOICE_MEMORY = 512 << 20   # bytes of delay lines and small states, all voices
+
+
+def _check_voice_memory(prog: StepProgram) -> None:
+    """Refuse a preset whose voices would need more memory than MAX_VOICE_MEMORY at this rate."""
+    per_voice = 4 * (sum(prog.ring_size.values()) + sum(b.n_state for b in prog.blocks))
+    total = per_voice * prog.polyphony
+    if total > MAX_VOICE_MEMORY:
+        raise PresetError(f"{prog.polyphony} voices need {total / 2**20:.0f} MiB of delay lines at "
+                          f"{prog.rate:g} Hz (limit {MAX_VOICE_MEMORY >> 20} MiB); lower the polyphony, "
+                          "shorten the delays or raise the lowest note", "polyphony")
 
 
 def _ring_size(b: Block, prog: StepProgram) -> int:
@@ -285,11 +319,14 @@ def _rename(m: AffineMatrix, old: str, new: str) -> AffineMatrix:
 
 
 def _shortest_cycle(sheaf: NetworkSheaf, start: int):
-    """Wires of the shortest directed cycle from ``start`` back to itself."""
+    """Wires of the shortest directed cycle from ``start`` back to itself.
+
+    Cycles through a field cell (a bridge) are couplings, not tuning loops.
+    """
     prev: dict[int, object] = {}
     q = deque()
     for w in sheaf.wires:
-        if w.src == start and w.dst >= 0:
+        if w.src == start and w.dst >= 0 and sheaf.cells[w.dst].kind != "field":
             if w.dst == start:
                 return [w]
             if w.dst not in prev:
@@ -298,7 +335,7 @@ def _shortest_cycle(sheaf: NetworkSheaf, start: int):
     while q:
         v = q.popleft()
         for w in sheaf.wires:
-            if w.src != v or w.dst < 0:
+            if w.src != v or w.dst < 0 or sheaf.cells[w.dst].kind == "field":
                 continue
             if w.dst == start:
                 path = [w]

@@ -169,6 +169,8 @@ def parse_json_text(text: str, where: str = "<text>") -> dict:
         raise PresetError(f"not valid JSON: {e.msg} at line {e.lineno} column {e.colno}", where) from None
     except ValueError as e:
         raise PresetError(str(e), where) from None
+    except RecursionError:
+        raise PresetError(f"JSON nested too deeply (a preset needs at most {MAX_DEPTH} levels)", where) from None
     if not isinstance(doc, dict):
         raise PresetError("a preset must be a JSON object", where)
     return doc
@@ -176,6 +178,38 @@ def parse_json_text(text: str, where: str = "<text>") -> dict:
 
 def _reject_constant(name: str):
     raise ValueError(f"non-finite number {name} is not allowed in a preset")
+
+
+MAX_DEPTH = 32          # nesting levels; the deepest v1 key sits at about 8
+MAX_VALUES = 200_000    # JSON values (keys' values, list items) in one document
+FLOAT32_MAX = 3.4028234663852886e38
+
+
+def check_values(doc: Any) -> None:
+    """Refuse what no preset needs before anything recursive walks the document.
+
+    Iterative, so it cannot overflow the stack: nesting deeper than
+    MAX_DEPTH, more than MAX_VALUES values, and numbers that are not finite
+    or do not fit the kernel's 32-bit float (``1e400`` parses as infinity,
+    a 400-digit integer cannot become a float at all).
+    """
+    stack = [(doc, ())]
+    count = 0
+    while stack:
+        node, parts = stack.pop()
+        count += 1
+        if count > MAX_VALUES:
+            raise PresetError(f"more than {MAX_VALUES} values; no preset needs that many", "(top level)")
+        if len(parts) > MAX_DEPTH:
+            raise PresetError(f"nested deeper than {MAX_DEPTH} levels", json_path(parts[:MAX_DEPTH]))
+        if isinstance(node, dict):
+            stack.extend((v, parts + (str(k),)) for k, v in node.items())
+        elif isinstance(node, list):
+            stack.extend((v, parts + (i,)) for i, v in enumerate(node))
+        elif isinstance(node, (int, float)) and not isinstance(node, bool):
+            if not abs(node) <= FLOAT32_MAX:
+                shown = f"{node:g}" if isinstance(node, float) else f"an integer of {len(str(abs(node)))} digits"
+                raise PresetError(f"number {shown} is not finite or does not fit a 32-bit float", json_path(parts))
 
 
 def migrate(doc: dict) -> dict:
@@ -200,6 +234,7 @@ def load_preset(source) -> Preset:
     if isinstance(source, Preset):
         return source
     if isinstance(source, dict):
+        check_values(source)
         doc, where = copy.deepcopy(source), "<memory>"
     elif isinstance(source, str) and source.lstrip().startswith("{"):
         doc, where = parse_json_text(source), "<text>"
@@ -209,6 +244,7 @@ def load_preset(source) -> Preset:
 
 
 def parse_preset(doc: dict, where: str = "<memory>") -> Preset:
+    check_values(doc)
     doc = migrate(doc)
     err = _schema_error(doc)
     if err is not None:
@@ -292,6 +328,7 @@ def dump_preset(doc: Mapping) -> str:
 def save_preset(doc: Mapping | Preset, path: str | os.PathLike) -> Path:
     """Validate, then write atomically (temp file, fsync, rename, fsync dir)."""
     raw = doc.raw if isinstance(doc, Preset) else dict(doc)
+    check_values(raw)
     parse_preset(copy.deepcopy(raw), str(path))  # never write an invalid preset
     text = dump_preset(raw)
     target = Path(path)

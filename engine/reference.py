@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import fieldprog as FP
 from . import voicing as V
 from .lower import (GUARD_LIMIT, HELD_QUIET_S, LIMITER_RELEASE_S, MAX_BEND_SEMITONES, RAMP_FADE_S,
                     SILENCE_HELD, SILENCE_RELEASED, StepProgram, note_hz)
@@ -46,6 +47,7 @@ class _Voice:
     relg: dict = field(default_factory=dict)
     states: dict = field(default_factory=dict)
     tune: dict = field(default_factory=dict)
+    fields: dict = field(default_factory=dict)      # field block -> fieldprog.FieldState
 
 
 class ReferenceStepper:
@@ -89,6 +91,8 @@ class ReferenceStepper:
                 k = f32(a)
                 v.tune[f"@tune{lp.index}"] = k
                 v.tune[f"@tunec{lp.index}"] = f32(math.sqrt(1.0 - k * k))
+        for bi, st in v.fields.items():
+            st.k2 = FP.kappa2(self.p.blocks[bi].field, pitch, self.p.rate, env)
         if v.status == V.RELEASED:
             self._release_gains(v)
 
@@ -96,6 +100,8 @@ class ReferenceStepper:
         period = self.p.rate / note_hz(v.note + self.bend)
         for bi, n in v.lens.items():
             v.relg[bi] = f32(self.p.release_decay ** (n / period))
+        for bi, st in v.fields.items():
+            st.rho = FP.release_rho(self.p.blocks[bi].field, period, self.p.release_decay)
 
     def _start(self, v: _Voice, note: int, vel: int) -> None:
         p = self.p
@@ -109,6 +115,7 @@ class ReferenceStepper:
         v.lens = {b.index: b.delay_length for b in p.blocks if b.is_delay and not b.pitch}
         v.relg = {b.index: 1.0 for b in p.blocks if b.is_delay}
         v.states = {b.index: [0.0] * b.n_state for b in p.blocks if not b.is_delay}
+        v.fields = {b.index: FP.new_state(b.field) for b in p.blocks if b.is_field}
         v.tune = {}
         self._tune(v)
         exc = p.excitation
@@ -302,6 +309,9 @@ class ReferenceStepper:
                 if blk.is_delay:
                     ring = v.rings[blk.index]
                     sig[blk.out_signal] = ring[(v.pos - v.lens[blk.index]) % len(ring)]
+                elif blk.is_field:
+                    for r in range(blk.n_out):
+                        sig[blk.out_signal + r] = FP.reference_read(blk.field, v.fields[blk.index], env, r)
                 elif not blk.feedthrough:
                     s = v.states[blk.index]
                     C = blk.C.value(env)
@@ -330,6 +340,8 @@ class ReferenceStepper:
                 if blk.is_delay:
                     ring = v.rings[blk.index]
                     ring[v.pos % len(ring)] = u[0] * v.relg[blk.index]
+                elif blk.is_field:
+                    FP.reference_step(blk.field, v.fields[blk.index], env, u)
                 elif blk.n_state:
                     s = np.asarray(v.states[blk.index])
                     A, B = blk.A.value(env), blk.B.value(env)

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 
 from .affine import AffineMatrix, parse_entry, parse_matrix
 from .cells import CellModel, build_cell
+from .cells.field import attach_ports, field_maps, field_symbols
 from .errors import PresetError
 
 EXCITE = -1   # the voice's excitation input (an endpoint, not a cell)
@@ -80,6 +81,9 @@ class NetworkSheaf:
                             "form": f"shift register of {length} samples (identity chain)"})
                 out.append({"cell": c.name, "map": "output", "form": f"u[n - {length}]"})
                 continue
+            if c.kind == "field":
+                out.extend(field_maps(c))
+                continue
             if c.n_state:
                 out.append({"cell": c.name, "map": "state update [B A]",
                             "rows": _hstack(c.B, c.A)})
@@ -98,6 +102,8 @@ class NetworkSheaf:
             for m in (c.A, c.B, c.C, c.D):
                 if m is not None:
                     syms |= m.symbols
+            if c.kind == "field":
+                syms |= field_symbols(c)
             for s in syms:
                 dep.setdefault(s, []).append(c.name)
         for w in self.wires:
@@ -159,10 +165,17 @@ def build_sheaf(preset) -> NetworkSheaf:
         index[cid] = len(cells)
         cells.append(cell)
     wires: list[Wire] = []
+    at_ports = attach_ports(cells, index, raw["wires"], params)   # field ports made by "at"
     for i, w in enumerate(raw["wires"]):
         path = f"wires[{i}]"
         src, sp, sdim = _parse_end(w["from"], path + ".from", index, cells, "from")
         dst, dp, ddim = _parse_end(w["to"], path + ".to", index, cells, "to")
+        if i in at_ports:
+            role, port = at_ports[i]
+            if role == "to":
+                dp, ddim = port, 1
+            else:
+                sp, sdim = port, 1
         graw = w.get("gain", 1.0)
         if isinstance(graw, list):
             gain = parse_matrix(graw, path + ".gain", params)

@@ -47,24 +47,22 @@ def _load(preset_arg: str, sets: list[str] | None = None):
 
 
 def _instrument(args, preset):
+    """An Instrument with the ramp times the stability certificate asks for."""
+    from engine.analysis import ramp_limits
     from engine.instrument import Instrument
 
     if getattr(args, "no_limiter", False):
         print("warning: the output limiter is OFF. " + CAUTION, file=sys.stderr)
     return Instrument(preset, rate=args.rate, max_block=512, seed=args.seed,
-                      limiter=not getattr(args, "no_limiter", False))
+                      limiter=not getattr(args, "no_limiter", False), min_ramp_s=ramp_limits(preset, args.rate))
 
 
 def _guard(args, preset) -> None:
-    """Refuse presets that are not frozen-stable unless --allow-unstable (when analysis exists)."""
-    try:
-        from engine import analysis
-    except ImportError:
-        return
-    guard = getattr(analysis, "guard", None)
-    if guard is not None:
-        for line in guard(preset, allow_unstable=getattr(args, "allow_unstable", False)):
-            print(f"warning: {line}", file=sys.stderr)
+    """Refuse presets that are not frozen-stable unless --allow-unstable; print warnings."""
+    from engine.analysis import guard
+
+    for line in guard(preset, allow_unstable=getattr(args, "allow_unstable", False)):
+        print(f"warning: {line}", file=sys.stderr)
 
 
 # ---------------------------------------------------------------- render

@@ -113,7 +113,9 @@ class MidiTranslator:
         if t == "control_change":
             return self._cc(msg.control, msg.value, offset)
         if t == "pitchwheel":
-            return [(offset, V.EV_BEND, 0, 0, msg.pitch / 8192.0 * self.bend_range)]
+            # 14-bit, centre 8192: full down is -range, full up +range (8191 steps above centre).
+            x = msg.pitch / (8191.0 if msg.pitch > 0 else 8192.0)
+            return [(offset, V.EV_BEND, 0, 0, x * self.bend_range)]
         if t == "aftertouch":
             return [self._param(b, msg.value / 127.0, offset) for b in self.pressure]
         if t == "program_change":
@@ -136,7 +138,8 @@ class MidiTranslator:
             return [(offset, V.EV_ALL_SOUND_OFF, 0, 0, 0.0)]
         if cc == CC_RESET:
             # Reset controllers: bend to centre, pedal up; the RPN bend range
-            # is kept (MIDI RP-015 recommended practice).
+            # is kept and the RPN selection goes to null (MIDI RP-015 recommended practice).
+            self._rpn = (127, 127)
             return [(offset, V.EV_BEND, 0, 0, 0.0), (offset, V.EV_SUSTAIN, 0, 0, 0.0)]
         if cc == CC_ALL_NOTES_OFF or 124 <= cc <= 127:
             return [(offset, V.EV_ALL_NOTES_OFF, 0, 0, 0.0)]
@@ -151,12 +154,12 @@ class MidiTranslator:
                 semis = math.floor(self.bend_range)
                 cents = round((self.bend_range - semis) * 100)
                 if cc == CC_DATA_MSB:
-                    semis = value
+                    semis, cents = value, 0     # a new MSB clears the LSB (MIDI 1.0)
                 else:
                     cents = min(value, 99)
                 self.bend_range = semis + cents / 100.0
             return []
-        if self.learn_target is not None and cc not in self.cc_map:
+        if self.learn_target is not None:
             name = self.learn_target
             self.bind(cc, name)
             self.learned.append((cc, name))

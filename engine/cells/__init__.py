@@ -16,7 +16,7 @@ from typing import Callable, Mapping
 
 from ..errors import PresetError
 from .model import CellModel, DelaySpec  # noqa: F401  (re-exported)
-from . import delay, filters, statespace
+from . import delay, field, filters, statespace
 
 CellBuilder = Callable[[dict, str, Mapping], CellModel]
 
@@ -27,6 +27,7 @@ CELL_KINDS: dict[str, CellBuilder] = {
     "onepole": filters.build_onepole,
     "biquad": filters.build_biquad,
     "allpass": filters.build_allpass,
+    "field": field.build,
 }
 
 
