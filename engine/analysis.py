@@ -97,6 +97,71 @@ def _exact_radius(A) -> tuple[float, complex | None]:
     return float(spectral_radius(A)), None
 
 
+def _state_estimate(prog: StepProgram, note: float) -> int:
+    """Size of the held voice's state without assembling it (delays at the note's period)."""
+    n = 0
+    period = prog.rate / note_hz(note)
+    for b in prog.blocks:
+        if b.is_delay:
+            n += b.delay_length if not b.pitch else int(period) + 2
+        elif b.is_field:
+            n += 2 * b.field.n_dof
+        else:
+            n += b.n_state
+    return n
+
+
+def _exact_radius_drift(A) -> tuple[float, complex | None, int]:
+    """(radius over the modes that are not DC drift, its eigenvalue, number of drift modes).
+
+    A drift mode is a simple eigenvalue at exactly z = 1 (geometric = algebraic
+    multiplicity): a constant level that neither grows nor decays, like a free
+    bar at rest in a new place.  A defective (Jordan) one grows and counts as
+    an ordinary marginal eigenvalue.
+    """
+    n = A.shape[0]
+    if n == 0 or n > EXACT_MAX_STATES:
+        r, z = _exact_radius(A)
+        return r, z, 0
+    import scipy.linalg as sla
+
+    M = A.toarray()
+    ev = sla.eigvals(M, check_finite=False)
+    at_one = np.abs(ev - 1.0) < 1e-9
+    alg = int(at_one.sum())
+    drift = 0
+    if alg:
+        geo = n - np.linalg.matrix_rank(M - np.eye(n), tol=1e-9)
+        if geo == alg:
+            drift = alg
+            ev = ev[~at_one]
+    if len(ev) == 0:
+        return 0.0, None, drift
+    i = int(np.argmax(np.abs(ev)))
+    return float(abs(ev[i])), complex(ev[i]), drift
+
+
+def _field_drift(prog: StepProgram) -> int:
+    from .fieldcheck import drift_count
+
+    return sum(drift_count(b.field) for b in prog.blocks if b.is_field)
+
+
+def _field_radii(prog: StepProgram, theta, note) -> dict[int, float]:
+    """Exact frozen radius of every field cell (engine.fieldcheck)."""
+    from .fieldcheck import field_radius
+
+    env = {p.name: float(p.value) for p in prog.params}
+    env.update(theta)
+    out = {}
+    for b in prog.blocks:
+        if b.is_field:
+            r = field_radius(b.field, env, float(note), prog.rate)
+            if r is not None:
+                out[b.index] = r
+    return out
+
+
 def _slowest_mode_radius(sysm) -> float | None:
     """Radius of the slowest-decaying partial found by shift-invert probes (a lower bound)."""
     from .modes import modes
@@ -120,21 +185,28 @@ def frozen(prog: StepProgram, box, notes) -> dict:
     worst = None
     for note in notes:
         for theta in corners_and_centre(box):
-            sysm = assemble(prog, theta, note)
             z = None
-            if sysm.n_states > EXACT_MAX_STATES:
-                bound = radius_upper_bound(prog, theta, note)
+            n_est = _state_estimate(prog, note)
+            if n_est > EXACT_MAX_STATES:
+                fr = _field_radii(prog, theta, note)
+                bound = radius_upper_bound(prog, theta, note, field_radius=fr)
                 if bound is not None:
                     pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": bound,
-                          "exact": False, "upper_bound": bound, "states": sysm.n_states, "_sys": sysm}
+                          "exact": False, "upper_bound": bound, "states": n_est, "_sys": None}
+                    drift = _field_drift(prog)
+                    if drift:
+                        pt["drift"] = drift
                     points.append(pt)
                     if worst is None or bound > worst["radius"]:
                         worst = pt
                     continue
-            r, z = _exact_radius(sysm.A)
+            sysm = assemble(prog, theta, note)
+            r, z, drift = _exact_radius_drift(sysm.A)
             exact = True
             pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": r,
                   "exact": exact, "states": sysm.n_states}
+            if drift:
+                pt["drift"] = drift
             if z is not None and r >= 1.0 - MARGIN:
                 f = abs(math.atan2(z.imag, z.real)) * prog.rate / (2 * math.pi)
                 pt["mode"] = {"freq_hz": f, "growth_db_per_s": 20 * prog.rate * math.log10(max(r, 1e-300))}
@@ -143,6 +215,8 @@ def frozen(prog: StepProgram, box, notes) -> dict:
                 worst = pt
     rmax = worst["radius"] if worst else 0.0
     status = "stable" if rmax < 1.0 - MARGIN else ("marginal" if rmax <= 1.0 + MARGIN else "unstable")
+    if status == "stable" and any(p.get("drift") for p in points):
+        status = "drift"
     # at bounded points the reported radius is the (tight) upper bound
     bounded = [p for p in points if "_sys" in p]
     for p in bounded:
@@ -205,10 +279,14 @@ def _store(key: str, report: dict) -> None:
 
 
 def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 48000.0,
-          n_modes: int = 8, use_cache: bool = True) -> dict:
-    """The full check report for ``preset`` (see the module docstring)."""
+          n_modes: int = 8, use_cache: bool = True, with_modes: bool = True) -> dict:
+    """The full check report for ``preset`` (see the module docstring).
+
+    ``with_modes=False`` skips the modal part (the guard rails need only the
+    verdict and the certificate).
+    """
     notes = check_notes(preset, notes)
-    key = _preset_hash(preset, notes, rate)
+    key = _preset_hash(preset, notes, rate) + ("" if with_modes else "-v")
     if use_cache:
         hit = _cached(key)
         if hit is not None:
@@ -221,7 +299,7 @@ def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 4800
         "rate": rate,
         "notes": notes,
         "box": {k: list(v) for k, v in box.items()},
-        "stable": fz["status"] == "stable",
+        "stable": fz["status"] in ("stable", "drift"),
         "frozen": fz["status"],
         "spectral_radius_max": fz["radius_max"],
         "radius_exact": fz["exact"],
@@ -230,7 +308,10 @@ def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 4800
         "corners": fz["points"],
         "warnings": [],
     }
-    if fz["status"] != "stable":
+    if fz["status"] == "drift":
+        report["warnings"].append("DC drift: some state holds a constant level after a note (bounded, "
+                                  "never growing); see drift_modes")
+    if fz["status"] not in ("stable", "drift"):
         report["certified"] = False
         report["route"] = "none"
         report["slope_per_s"] = {}
@@ -243,7 +324,7 @@ def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 4800
     if report["stable"] and report["certified"] is False:
         report["warnings"].append("frozen-stable only: fast knob motion is not proven safe")
     mid = notes[len(notes) // 2]
-    report["modes"], report["drift_modes"] = _modes(prog, mid, n_modes)
+    report["modes"], report["drift_modes"] = _modes(prog, mid, n_modes) if with_modes else ([], [])
     report["mode_note"] = mid
     report["fields"] = _fields(prog, preset, box)
     if use_cache:
@@ -263,26 +344,10 @@ def _describe_point(pt: dict, status: str) -> str:
 def _certificate(prog, preset, box, notes) -> dict:
     from .certify import certify_network
 
-    if any(b.is_field for b in prog.blocks):
-        fc = _field_certificate(prog, preset, box, notes)
-        if fc is not None:
-            return fc
     cert = certify_network(prog, box, notes)
     slopes = {k: v * prog.rate for k, v in cert.slope_per_sample.items()}
     return {"certified": cert.certified, "route": cert.route, "gain_loop_rho": cert.rho,
             "slope_per_s": slopes, "failing": cert.failing, "certificate_notes": cert.notes}
-
-
-def _field_certificate(prog, preset, box, notes):
-    """Fields: delegate to the field lowering's energy certificate when it provides one."""
-    try:
-        from . import fieldprog
-    except ImportError:
-        return None
-    fn = getattr(fieldprog, "certify_fields", None)
-    if fn is None:
-        return None
-    return fn(prog, preset, box, notes)
 
 
 def _fields(prog, preset, box) -> list[dict]:
@@ -290,9 +355,9 @@ def _fields(prog, preset, box) -> list[dict]:
     for b in prog.blocks:
         if not b.is_field:
             continue
-        summary = getattr(b.field, "summary", None)
-        info = summary() if callable(summary) else {}
-        out.append({"cell": b.name, **info})
+        info = b.field.model.summary()
+        info["cell"] = b.name
+        out.append(info)
     return out
 
 
@@ -326,7 +391,7 @@ def guard(preset: Preset, allow_unstable: bool = False, rate: float = 48000.0) -
     Raises UnstableError naming the offending mode and corner unless
     ``allow_unstable``.
     """
-    report = check(preset, rate=rate)
+    report = check(preset, rate=rate, with_modes=False)
     if not report["stable"]:
         msg = report.get("failing") or "not stable"
         if not allow_unstable:
@@ -342,7 +407,7 @@ def ramp_limits(preset: Preset, rate: float = 48000.0) -> dict[str, float]:
     The proof bounds the change per *sample*; the report states it per second
     at the analysis rate, so the time is rescaled to the playing ``rate``.
     """
-    report = check(preset)
+    report = check(preset, with_modes=False)
     if report.get("certified") != "ramp-limited":
         return {}
     out = {}

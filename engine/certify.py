@@ -121,7 +121,10 @@ def _peak_gain(A, B, C, D, zs) -> float:
     k = A.shape[0]
     if k:
         M = zs[:, None, None] * np.eye(k)[None] - A[None]
-        H = D[None] + C[None] @ np.linalg.solve(M, np.broadcast_to(B, (len(zs),) + B.shape))
+        try:
+            H = D[None] + C[None] @ np.linalg.solve(M, np.broadcast_to(B, (len(zs),) + B.shape))
+        except np.linalg.LinAlgError:      # a pole on the grid: unbounded gain
+            return math.inf
     else:
         H = np.broadcast_to(D, (len(zs),) + D.shape)
     if H.shape[1] == 1 and H.shape[2] == 1:
@@ -251,11 +254,24 @@ def _gain_cells(prog: StepProgram, box: Box, fixed_delays: bool):
     """Per-block inputs to the small-gain route (cells and wires at the corners)."""
     cs = corners(dict(box)) if box else [{}]
     cells, special = [], {}
+    cyclic = cyclic_blocks(prog)
     for b in prog.blocks:
         if b.is_delay:
             cells.append(GainCell(b.name, "delay", length_varies=not fixed_delays))
         elif b.is_field:
-            special[b.name] = None
+            from .fieldcheck import moving_symbols
+
+            moving = sorted(moving_symbols(b.field) & set(box))
+            if b.name in cyclic:
+                special[b.name] = f'field "{b.name}" lies on a feedback loop; no route covers that yet'
+            elif moving:
+                special[b.name] = (f'field "{b.name}": knob(s) {", ".join(moving)} move its own update; '
+                                   "only strike and pickup knobs are covered")
+            else:
+                # off every loop, with coefficients that knobs do not move: an LTI
+                # cell whose frozen stability the radius check proves; its gain
+                # (finite) cannot enter the loop gain, so 1 stands in for it.
+                special[b.name] = CellGain(b.name, 1.0, "any", "off-loop field, fixed update")
         elif b.tune_symbol:
             special[b.name] = CellGain(b.name, 1.0, "l2", "orthogonal lattice section (Gray & Markel 1975)")
         elif b.n_state == 0:
@@ -282,9 +298,9 @@ def certify_network(prog: StepProgram, box: Box, notes) -> NetworkCertificate:
     if not fixed:
         notes_out.append(why)
     cells, special, wires = _gain_cells(prog, box, fixed)
-    if any(v is None for v in special.values()):
-        return NetworkCertificate(False, "none", failing="field cells are certified by engine.analysis",
-                                  notes=notes_out)
+    for v in special.values():
+        if isinstance(v, str):
+            return NetworkCertificate(False, "none", failing=v, notes=notes_out)
     results = {}
     for norm in ("l2", "linf"):
         gains, missing = [], None
@@ -295,7 +311,9 @@ def certify_network(prog: StepProgram, box: Box, notes) -> NetworkCertificate:
                 break
             gains.append(g)
         for name, g in special.items():
-            if g.norm != norm:
+            if g.norm == "any":
+                gains.append(CellGain(g.cell, g.gain, norm, g.route))
+            elif g.norm != norm:
                 missing = missing or name
             else:
                 gains.append(g)
@@ -319,6 +337,9 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
     for c in cells:
         if c.kind == "filter":
             frozen_gains[c.name] = _hinf(c.corners)
+            if not math.isfinite(frozen_gains[c.name]):
+                return NetworkCertificate(False, "none", failing=f'cell "{c.name}" has a pole on the unit circle '
+                                          "(not strictly stable)", notes=notes_out)
     gains0 = []
     for c in cells:
         if c.kind == "filter":
@@ -329,7 +350,7 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
                 return NetworkCertificate(False, "none", failing=f'cell "{c.name}" has no ℓ2 gain bound',
                                           notes=notes_out)
             gains0.append(g)
-    gains0 += list(special.values())
+    gains0 += [CellGain(g.cell, g.gain, "l2", g.route) for g in special.values()]
     rho0, _ = network_small_gain(build_gain_matrix(gains0, wires, "l2"))
     if not rho0 < 1.0:
         return NetworkCertificate(False, "none", rho0, failing=f"frozen ℓ2 loop gain {rho0:.6f} is not below 1",
@@ -364,7 +385,7 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
                 per = frac * (box[n][1] - box[n][0])
                 slopes[n] = min(slopes.get(n, math.inf), per)
         final.append(CellGain(c.name, target, "l2", f"parameter-dependent storage, slope ≤ {frac:.3g} of range/sample"))
-    final += list(special.values())
+    final += [CellGain(g.cell, g.gain, "l2", g.route) for g in special.values()]
     rho, ok = network_small_gain(build_gain_matrix(final, wires, "l2"))
     if not ok:
         return NetworkCertificate(False, "none", rho, failing="ramp-limited gains still close a loop ≥ 1",
@@ -424,7 +445,7 @@ def _largest_delta(b: Block, prog: StepProgram, box: Box, gamma: float) -> float
 # a fast frozen bound for large networks
 
 def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: float,
-                       n_freq: int = 4096) -> float | None:
+                       n_freq: int = 4096, field_radius: Mapping[int, float] | None = None) -> float | None:
     """An upper bound r on the spectral radius of the frozen voice at (θ, note).
 
     ρ(A) < r exactly when the network with every z replaced by r·z is
@@ -443,12 +464,11 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
         if lp.tuner is not None:
             env[f"@tune{lp.index}"] = a
             env[f"@tunec{lp.index}"] = math.sqrt(1.0 - a * a)
-    if any(b.is_field for b in prog.blocks):
-        return None
+    field_radius = field_radius or {}
     zs = np.exp(1j * np.linspace(0.0, math.pi, n_freq))
     mats = {}
     for b in prog.blocks:
-        if not b.is_delay and b.n_state:
+        if not b.is_delay and not b.is_field and b.n_state:
             mats[b.index] = _block_matrices(b, env)
     name_of = {b.out_signal + r: b.name for b in prog.blocks for r in range(b.n_out)}
     wires = []
@@ -468,10 +488,16 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
     def gains(r: float):
         out = []
         for b in prog.blocks:
+            if b.is_field and b.name in cyclic:
+                return None
             if b.name not in cyclic:
                 # off every loop a cell cannot close a loop: it only has to be
                 # stable at radius r (checked when it has states)
-                if not b.is_delay and b.n_state and np.max(np.abs(np.linalg.eigvals(mats[b.index][0]))) >= r:
+                if b.is_field:
+                    fr = field_radius.get(b.index)
+                    if fr is None or fr >= r:
+                        return None
+                elif not b.is_delay and b.n_state and np.max(np.abs(np.linalg.eigvals(mats[b.index][0]))) >= r:
                     return None
                 out.append(CellGain(b.name, 1.0, "l2", "off-loop"))
                 continue

@@ -317,6 +317,16 @@ class AudioOutput(AudioOutputBase):
         if stream is None:
             return
         sd = _sounddevice()
+        if not stream.active:
+            # The stream ended by itself: the device (or the JACK server) went away.
+            # Stopping or closing it -- and PortAudio's own clean-up at exit -- would
+            # then wait forever for a server that is gone, so the stream is left alone.
+            import atexit
+
+            handler = getattr(sd, "_exit_handler", None)
+            if handler is not None:
+                atexit.unregister(handler)
+            raise AudioError(f"the audio device stopped while playing ({self._describe()})")
         try:
             stream.stop(ignore_errors=False)
         except sd.PortAudioError as exc:

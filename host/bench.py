@@ -5,8 +5,9 @@ two (or more) sides in alternation -- rep 1: A then B, rep 2: B then A, ...
 -- so that drift (other programs, clock changes) hits both sides alike, and
 reports the median with its spread (quartiles, min, max, count) of the
 per-repetition values.  Kernel times are taken in C (csrc/bench/drive.c
-calls the render function for a run of blocks and reads CLOCK_MONOTONIC),
-so Python's call overhead enters only the measurement that is about it.
+calls the render function for a run of blocks and reads the thread's CPU
+clock), so Python's call overhead enters only the measurement that is
+about it.
 
 Measurements (JSON keys):
 
@@ -106,13 +107,15 @@ int ssb_pluck_init(void *mem, int n, const int32_t *lens, const int32_t *sizes, 
                    float decay, float out_gain);
 void ssb_pluck_render(void *mem, float *out, int frames);
 int64_t ssb_pluck_run(void *mem, float *out, int frames, int nblocks, int keep);
-size_t ssb_torus_bytes(int rows, int cols);
-int ssb_torus_init(void *mem, int rows, int cols, float cv, float cl, float cr,
+""" + "".join(f"""
+size_t ssb_torus_bytes_{t}(int rows, int cols);
+int ssb_torus_init_{t}(void *mem, int rows, int cols, float cv, float cl, float cr,
                    int n_strike, const int32_t *strike, const float *sw,
                    int n_pick, const int32_t *pick, const float *pw, float out_gain);
-int64_t ssb_torus_run(void *mem, const float *input, float *out, int frames);
-"""
-_BENCH_FILES = ("drive.c", "pluck_hand.c", "stencil_hand.c")
+int64_t ssb_torus_run_{t}(void *mem, const float *input, float *out, int frames);
+""" for t in ("f", "d"))        # stencil_hand.c once per state type (float, double)
+_BENCH_FILES = ("drive.c", "pluck_hand.c")
+_STENCIL_TYPES = (("f", "float"), ("d", "double"))
 
 
 class Skip(Exception):
@@ -207,11 +210,17 @@ def _bench_module():
     from engine.build import compile_module
 
     text = []
-    for name in _BENCH_FILES:
+    for name in _BENCH_FILES + ("stencil_hand.c",):
         p = BENCH_DIR / name
         if not p.exists():
             raise SheafsynthError(f"benchmark source {p} is missing")
-        text.append(f"/* ---- {name} ---- */\n" + p.read_text(encoding="utf-8"))
+        body = p.read_text(encoding="utf-8")
+        if name != "stencil_hand.c":
+            text.append(f"/* ---- {name} ---- */\n" + body)
+            continue
+        for suffix, ctype in _STENCIL_TYPES:
+            text.append(f"/* ---- {name} ({ctype}) ---- */\n#define SSB_T_REAL {ctype}\n"
+                        f"#define SSB_T_NAME(x) x##_{suffix}\n{body}\n#undef SSB_T_REAL\n#undef SSB_T_NAME\n")
     return compile_module(_BENCH_CDEF, "\n".join(text), tag="bench")
 
 
@@ -361,7 +370,10 @@ def _kernel_ring_floats(prog, blk, note: int) -> int:
     for g in lp.gains:
         lo = g.const
         for sym, c in g.terms:
-            lo = lo + min(c * box[sym][0], c * box[sym][1]) if sym in box else -1.0
+            if sym not in box:
+                lo = -1.0
+                break
+            lo += min(c * box[sym][0], c * box[sym][1])
         k += lo < 0.0
     pmax = RATE / (_note_hz(note - MAX_BEND_SEMITONES) * blk.pitch_ratio * 2.0 ** (blk.pitch_cents / 1200.0))
     need = max(pmax * (1.0 + 0.5 * k), pmax + 1.5)
@@ -787,12 +799,37 @@ class _Bench:
         fp = next(b for b in k.inst.program.blocks if b.is_field).field
         self.details["torus4096_realtime_factor"] = {
             "realtime_factor": rtf, "frames": timed, "vertices": TORUS_SHAPE[0] * TORUS_SHAPE[1],
-            "layout": fp.layout, "setup": "one voice, struck by an impulse; the first block untimed",
+            "layout": fp.layout, "state_type": getattr(fp, "ctype", "float"),
+            "setup": "one voice, struck by an impulse; the first block untimed",
             "handwritten_realtime_factor": spread([timed / RATE / t for t in res["hand"]]),
         }
         self.details["field_vs_handwritten"] = {"ratio": ratio, "max_abs_diff": same,
                                                 "handwritten": "csrc/bench/stencil_hand.c"}
+        if not self.quick and getattr(fp, "ctype", "float") != "float":
+            self._torus_single(torus, nblk)
         self._largest_field_preset()
+
+    def _torus_single(self, torus: dict, nblk: int) -> None:
+        """The same torus with float32 state ("precision": "single"): a figure beside the default's."""
+        raw = copy.deepcopy(torus)
+        raw["cells"][0]["precision"] = "single"
+        try:
+            k = _Kernel(self, raw)
+        except SheafsynthError as e:
+            self.details["torus4096_realtime_factor"]["single_precision"] = f"not measured: {e}"
+            return
+        ev = k.events([(0, 1, 60, 100, 0.0)])
+
+        def run():
+            k.silence()
+            k.run(1, ev)
+            return k.run(nblk - 1)
+
+        ts = [run() for _ in range(5)]
+        self.details["torus4096_realtime_factor"]["single_precision"] = {
+            "realtime_factor": spread([(nblk - 1) * BLOCK / RATE / t for t in ts]),
+            "note": 'the same plate with "precision": "single" (float32 state; the default keeps a torus '
+                    "in double because its sheaf Laplacian has a drift mode)"}
 
     def _hand_torus(self, k: _Kernel, vel: int, frames: int):
         """csrc/bench/stencil_hand.c set up as the torus kernel's one voice; (memory, input samples)."""
@@ -810,6 +847,7 @@ class _Bench:
         if c.get("ce") or c.get("cf"):
             raise Skip("the hand-written torus loop has no hf-loss or stiffness terms")
         rows, cols, width = st.rows, st.cols, st.width
+        t = "d" if getattr(fp, "ctype", "float") == "double" else "f"
 
         def points(w):
             nz = np.flatnonzero(w)
@@ -828,22 +866,24 @@ class _Bench:
         x = np.zeros(frames, np.float32)
         x[0] = np.float32(float(exc.get("gain", 1.0)) * vel / 127.0)
         ffi, lib = self.ffi, self.lib
-        mem = ffi.new("char[]", int(lib.ssb_torus_bytes(rows, cols)))
-        ptr = lambda a, t: ffi.cast(t, ffi.from_buffer(a))  # noqa: E731
-        rc = lib.ssb_torus_init(mem, rows, cols, c["cv"], c["cl"], c["cr"], len(si), ptr(si, "int32_t *"),
-                                ptr(sw, "float *"), len(pi), ptr(pi, "int32_t *"), ptr(pw, "float *"), float(og))
+        mem = ffi.new("char[]", int(getattr(lib, f"ssb_torus_bytes_{t}")(rows, cols)))
+        ptr = lambda a, ty: ffi.cast(ty, ffi.from_buffer(a))  # noqa: E731
+        rc = getattr(lib, f"ssb_torus_init_{t}")(mem, rows, cols, c["cv"], c["cl"], c["cr"], len(si),
+                                                 ptr(si, "int32_t *"), ptr(sw, "float *"), len(pi),
+                                                 ptr(pi, "int32_t *"), ptr(pw, "float *"), float(og))
         if rc != 0:
             raise Skip("the torus has more strike or pickup points than the hand-written loop takes")
-        return mem, x
+        return (mem, t), x
 
     def _torus_run(self, mem, x: np.ndarray, out: np.ndarray, skip: int = 0) -> float:
         """Run the hand-written torus over x into out; seconds for the samples after ``skip``."""
-        ffi, lib = self.ffi, self.lib
+        ffi = self.ffi
+        mem, t = mem
+        fn = getattr(self.lib, f"ssb_torus_run_{t}")
         if skip:
-            lib.ssb_torus_run(mem, ffi.cast("float *", ffi.from_buffer(x)), ffi.cast("float *", ffi.from_buffer(out)), skip)
+            fn(mem, ffi.cast("float *", ffi.from_buffer(x)), ffi.cast("float *", ffi.from_buffer(out)), skip)
         xs, os_ = x[skip:], out[skip:]
-        ns = lib.ssb_torus_run(mem, ffi.cast("float *", ffi.from_buffer(xs)), ffi.cast("float *", ffi.from_buffer(os_)),
-                               len(xs))
+        ns = fn(mem, ffi.cast("float *", ffi.from_buffer(xs)), ffi.cast("float *", ffi.from_buffer(os_)), len(xs))
         return ns * 1e-9
 
     def _largest_field_preset(self) -> None:
@@ -862,7 +902,7 @@ class _Bench:
         size, name, raw = best
         k = _Kernel(self, raw)
         size = sum(b.field.n_dof for b in k.inst.program.blocks if b.is_field)
-        size, name, k = best
+        ctypes_ = sorted({getattr(b.field, "ctype", "float") for b in k.inst.program.blocks if b.is_field})
         frames = (RATE // 8) if self.quick else (RATE // 2)
         nblk = frames // BLOCK
         ev = k.events([(0, 1, 60, 100, 0.0)])
@@ -874,7 +914,8 @@ class _Bench:
 
         ts = [run() for _ in range(3 if self.quick else 5)]
         self.details["torus4096_realtime_factor"]["largest_field_preset"] = {
-            "preset": name, "dofs": size, "realtime_factor": spread([(nblk - 1) * BLOCK / RATE / t for t in ts]),
+            "preset": name, "dofs": size, "state_type": "/".join(ctypes_),
+            "realtime_factor": spread([(nblk - 1) * BLOCK / RATE / t for t in ts]),
             "setup": "one voice, note 60, velocity 100, the first block untimed"}
 
     # -- 6. host overhead ---------------------------------------------------------
@@ -1237,6 +1278,9 @@ def format_table(rep: dict) -> str:
         if key == "generated_vs_handwritten" and isinstance(det.get("ratio_vs_bend_ready_rings"), dict):
             sp = det["ratio_vs_bend_ready_rings"]
             row("  ... hand-written with bend-ready rings", sp.get("median"), "", sp, "", None)
+        if key == "torus4096_realtime_factor" and isinstance(det.get("single_precision"), dict):
+            sp = det["single_precision"].get("realtime_factor") or {}
+            row("  ... the same torus, float32 state", sp.get("median"), "x", sp, "", None)
         if key == "torus4096_realtime_factor" and isinstance(det.get("largest_field_preset"), dict):
             fp = det["largest_field_preset"]
             sp = fp.get("realtime_factor") or {}

@@ -44,7 +44,7 @@ def render_text(r: dict) -> str:
     w(f"preset {r['preset']}   notes {', '.join(map(str, r['notes']))}   rate {r['rate']:g} Hz")
     box = ", ".join(f"{k} {v[0]:g}..{v[1]:g}" for k, v in r["box"].items()) or "no mapped parameters"
     w(f"knob box: {box}")
-    verdict = {"stable": "STABLE", "marginal": "NOT STRICTLY STABLE (lossless somewhere)",
+    verdict = {"stable": "STABLE", "drift": "STABLE apart from DC drift (bounded)", "marginal": "NOT STRICTLY STABLE (lossless somewhere)",
                "unstable": "UNSTABLE"}[r["frozen"]]
     kind = "exact" if r["radius_exact"] else "rigorous upper bound"
     w(f"frozen: {verdict}   largest spectral radius {r['spectral_radius_max']:.9f} ({kind})")

@@ -81,18 +81,23 @@ class MidiTranslator:
         self.default_bend_range = self.bend_range
         self._rpn = (127, 127)
         self.learn_target: str | None = None
+        self._learn_range: tuple[float | None, float | None] = (None, None)
         self.learned: list[tuple[int, str]] = []
 
     # -- learn mode ---------------------------------------------------------
-    def learn(self, parameter: str) -> None:
-        """Bind the next moved (unreserved) CC to ``parameter``."""
+    def learn(self, parameter: str, lo: float | None = None, hi: float | None = None) -> None:
+        """Bind the next moved (unreserved) CC to ``parameter``, over lo..hi (default: its range)."""
         if parameter not in self.param_index:
             raise PresetError(f'unknown parameter "{parameter}"', "learn")
+        self._learn_range = (lo, hi)
         self.learn_target = parameter
 
-    def bind(self, cc: int, parameter: str, curve: str = "linear") -> None:
+    def bind(self, cc: int, parameter: str, curve: str = "linear",
+             lo: float | None = None, hi: float | None = None) -> None:
         spec = self.preset.parameters[parameter]
-        self.cc_map[cc] = Binding(ControlSpec("cc", cc, parameter, curve, spec.lo, spec.hi),
+        lo = spec.lo if lo is None else lo
+        hi = spec.hi if hi is None else hi
+        self.cc_map[cc] = Binding(ControlSpec("cc", cc, parameter, curve, lo, hi),
                                   self.param_index[parameter])
 
     # -- translation --------------------------------------------------------
@@ -161,7 +166,7 @@ class MidiTranslator:
             return []
         if self.learn_target is not None:
             name = self.learn_target
-            self.bind(cc, name)
+            self.bind(cc, name, lo=self._learn_range[0], hi=self._learn_range[1])
             self.learned.append((cc, name))
             self.learn_target = None
         b = self.cc_map.get(cc)

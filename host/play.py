@@ -52,6 +52,7 @@ PORT_CHECK_S = 0.1         # MIDI source watch period, s
 MIDI_IDLE_S = 0.0005       # MIDI thread sleep when no message is waiting, s
 DRAIN_WAIT_S = 0.05        # longest wait for the ring to drain before a switch, s
 RETIRE_WAIT_S = 2.0        # longest wait for a faded instance to be released, s
+GIL_SWITCH_S = 0.0005      # interpreter switch interval while playing, s
 LOG_LIMIT = 200_000        # most MIDI messages / anchors kept for the report
 
 
@@ -165,6 +166,20 @@ def _resolve_device(device: str | None):
     return int(info["index"]), str(api), float(info["default_samplerate"]), str(info["name"])
 
 
+def _check_output(index: int, rate: float, device_rate: float) -> None:
+    """AudioError now if the device cannot run at ``rate`` Hz in stereo float."""
+    from host.audio import _sounddevice
+
+    sd = _sounddevice()
+    try:
+        sd.check_output_settings(device=index, samplerate=rate, channels=2, dtype="float32")
+    except (ValueError, sd.PortAudioError) as exc:
+        hint = f" (the device's own rate is {device_rate:g} Hz: try --rate {device_rate:g})" \
+            if abs(device_rate - rate) > 1e-6 else ""
+        raise AudioError(f"the audio output cannot play {rate:g} Hz stereo: "
+                         f"{str(exc).splitlines()[0]}{hint}") from None
+
+
 def _atomic_write_text(path: Path, text: str) -> None:
     path = Path(path)
     fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".tmp", dir=path.parent)
@@ -240,12 +255,14 @@ class LiveHost:
         self.device_index, self.hostapi, dev_rate, self.device_name = _resolve_device(o.device)
         self.device_rate = dev_rate
         self.rate = float(o.rate) if o.rate is not None else (dev_rate if 8000 <= dev_rate <= 192000 else 48000.0)
+        _check_output(self.device_index, self.rate, dev_rate)      # before the long compile
         for line in self._guard(first, fatal=True):
             self._say(f"warning: {first.name}: {line}")
         channel = None if o.channel is None else o.channel - 1
 
-        def make_slot(number, name, preset, values) -> _Slot:
-            ramps = self._ramp_limits(preset)
+        def make_slot(number, name, preset, values, ramps=None) -> _Slot:
+            if ramps is None:
+                ramps = self._ramp_limits(preset)
             insts = [Instrument(preset, rate=self.rate, max_block=o.buffer, seed=o.seed + k,
                                 limiter=not o.no_limiter, min_ramp_s=ramps) for k in range(2)]
             defaults = {p.name: p.value for p in insts[0].program.params}
@@ -269,8 +286,20 @@ class LiveHost:
                 continue
             try:
                 preset = bank.load(str(e.path))
-                warnings = self._guard(preset, fatal=False)
-                slot = make_slot(number, e.name, preset, {})
+                if self._checked_before(preset):
+                    warnings = self._guard(preset, fatal=False)
+                    slot = make_slot(number, e.name, preset, {})
+                elif e.origin == "factory" or o.allow_unstable:
+                    # No analysis at start-up for the rest of the bank (it can take minutes);
+                    # factory presets are checked by the project's own tests.
+                    warnings = [f"not checked on this machine yet (`sheafsynth check {e.name}` "
+                                "checks it and lets its knobs move as fast as the proof allows)"]
+                    slot = make_slot(number, e.name, preset, {}, ramps={})
+                else:
+                    self._say(f"program {number} ({e.name}) left out: not checked yet; run "
+                              f"`sheafsynth check {e.name}` once (or pass --allow-unstable)")
+                    self.slots.append(None)
+                    continue
                 slot.warnings = warnings        # said when the program is chosen
                 self.slots.append(slot)
             except Exception as exc:  # one bad bank preset must not stop the others
@@ -281,7 +310,45 @@ class LiveHost:
         self.slot = start
         self.inst = start.instances[0]
         if o.learn is not None:
-            start.translator.learn(o.learn)
+            refused = self._learn(start, o.learn)
+            if refused:
+                raise InputError(f"--learn {o.learn}: {refused}")
+
+    def _checked_before(self, preset) -> bool:
+        """True when engine.analysis has this preset's report cached (so guarding it is quick)."""
+        try:
+            from engine import analysis as A
+        except ImportError:
+            return True
+        try:
+            notes = A.check_notes(preset, None)
+            # `sheafsynth check NAME` stores the report at its default rate
+            return A._cached(A._preset_hash(preset, notes, 48000.0)) is not None
+        except Exception:   # another version of the analysis module: treat as unchecked
+            return False
+
+    def _learn(self, slot: _Slot, parameter: str) -> str | None:
+        """Arm learn mode for ``parameter``; returns why it is refused, or None.
+
+        A learned knob spans the parameter's range in the preset's controls,
+        the box the stability analysis checked; a parameter no control maps
+        was checked only at its value, so it is refused unless --allow-unstable.
+        """
+        try:
+            from engine.analysis import mapped_box
+        except ImportError:
+            slot.translator.learn(parameter)
+            return None
+        box = mapped_box(slot.preset)
+        if parameter in box:
+            slot.translator.learn(parameter, *box[parameter])
+            return None
+        if self.opts.allow_unstable:
+            slot.translator.learn(parameter)
+            return None
+        mapped = ", ".join(sorted(box)) or "none"
+        return (f'no control of "{slot.name}" maps it, so its stability was checked only at its '
+                f"value (mapped: {mapped}; --allow-unstable learns it anyway)")
 
     def _ramp_limits(self, preset) -> dict[str, float]:
         """Ramp times (s) a ramp-limited stability certificate asks for, when analysis exists."""
@@ -470,6 +537,8 @@ class LiveHost:
         old_handlers = {}
         error: BaseException | None = None
         t_start = time.monotonic()
+        old_switch = sys.getswitchinterval()
+        sys.setswitchinterval(GIL_SWITCH_S)       # the MIDI thread gets the interpreter back quickly
         try:
             if o.record is not None:
                 self.audio.start_recording(o.record)
@@ -500,6 +569,7 @@ class LiveHost:
             error = exc
             raise
         finally:
+            sys.setswitchinterval(old_switch)
             for sig, hnd in old_handlers.items():
                 signal.signal(sig, hnd)
             status.clear()
@@ -587,11 +657,14 @@ class LiveHost:
                     self._save(self.opts.save_as or None)
                 elif key in "lL":
                     names = [p.name for p in self.inst.program.params]
-                    if names:
-                        tr = self.slot.translator
-                        with self._lock:
-                            tr.learn(names[learn_cycle % len(names)])
+                    for _ in range(len(names)):
+                        name = names[learn_cycle % len(names)]
                         learn_cycle += 1
+                        with self._lock:
+                            if self._learn(self.slot, name) is None:
+                                break
+                    else:
+                        status.say("learn: no parameter of this preset can be learned")
                 elif key == "?":
                     from host.status import KEY_HELP
                     status.say(KEY_HELP)

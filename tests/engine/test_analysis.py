@@ -152,7 +152,7 @@ def test_drift_mode_is_named():
            "excitation": {"kind": "impulse"}}
     r = check(load_preset(doc), use_cache=False)
     assert r["drift_modes"] and "acc" in json.dumps(r["drift_modes"])
-    assert r["frozen"] == "marginal"
+    assert r["frozen"] == "drift" and any("DC drift" in w for w in r["warnings"])
 
 
 def test_check_cli_exit_codes(tmp_path, capsys):

@@ -29,6 +29,8 @@ import numpy as np
 import pytest
 import soundfile
 
+from engine.errors import InputError
+
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from measure import cents, fundamental, spectral_centroid  # noqa: E402
 
@@ -241,6 +243,14 @@ def portaudio_closed_here():
             sd._initialize()
 
 
+def check_once(path: Path) -> None:
+    """What `sheafsynth check` does for a user preset: analyse it into the shared cache."""
+    from engine import analysis
+    from engine.preset import load_preset
+
+    analysis.check(load_preset(path))
+
+
 def bank_numbers(bank_dir: Path) -> dict[str, int]:
     """Program numbers as the host will number them (bank listing order)."""
     from host import bank
@@ -281,6 +291,7 @@ def main_session(jack_server, tmp_path_factory):
     bank_dir = tmp / "bank"
     bank_dir.mkdir()
     (bank_dir / "ramp-probe.json").write_text(json.dumps(RAMP_PROBE))
+    check_once(bank_dir / "ramp-probe.json")     # a user preset is played only once checked
     numbers = bank_numbers(bank_dir)
     tl = [(T_JUNK + 0.01 * i, m) for i, m in enumerate(JUNK)] + [(T_LEARN, cc(21, 127))]
     tl += [(T_LAT_ON, on(84)), (T_LAT_OFF, off(84)),
@@ -428,7 +439,7 @@ def test_pitch_bend_up_two_semitones_at_default_range(main_session):
 
 def test_program_change_switches_without_a_gap(main_session):
     x, tm, rep = main_session["x"], main_session["timing"], main_session["rep"]
-    assert [p["name"] for p in rep["programs"]] == ["lantern-harp", "ramp-probe"]
+    assert [p["name"] for p in rep["programs"]] == ["lantern-harp", "ramp-probe"], main_session["log"]
     assert rep["switches"] == 3
     f_old = tm.frame_of(tm.stamp(on(57)))
     f_end = tm.frame_of(tm.stamp(off(69), 2))
@@ -627,6 +638,46 @@ def test_sigterm_stops_cleanly_and_reports(jack_server, tmp_path):
     assert any(line.startswith("stopped after") for line in play.out)
     # the note was ringing: it ends in a fade, not a cut
     assert len(x) > 0 and np.abs(x[-BLOCK:]).max() < 1e-3
+
+
+# ------------------------------------------------------------------ bank and learn rules (no stream)
+
+def test_unchecked_user_presets_are_left_out_of_the_bank(jack_server, tmp_path, monkeypatch):
+    from host.play import LiveHost, PlayOptions
+
+    monkeypatch.setenv("SHEAFSYNTH_USER_DIR", str(tmp_path))
+    (tmp_path / "ramp-probe.json").write_text(json.dumps(RAMP_PROBE))
+    other = dict(RAMP_PROBE, name="ramp-probe-2")
+    other["parameters"] = {**RAMP_PROBE["parameters"], "decay": {"value": 0.999, "min": 0.99, "max": 0.9999}}
+    (tmp_path / "ramp-probe-2.json").write_text(json.dumps(other))
+    check_once(tmp_path / "ramp-probe.json")
+    host = LiveHost(PlayOptions(preset="porch-pluck", device="JACK", rate=RATE, bank_dir=str(tmp_path)))
+    host.prepare()
+    numbers = bank_numbers(tmp_path)
+    assert host.slots[numbers["ramp-probe"]] is not None
+    assert host.slots[numbers["ramp-probe-2"]] is None
+    assert any("ramp-probe-2" in m and "left out" in m for m in host.messages)
+    # factory presets are all in (the project's tests check them)
+    assert all(host.slots[i] is not None for n, i in numbers.items() if not n.startswith("ramp-probe"))
+    assert host.slot.number == numbers["porch-pluck"]
+
+
+def test_learn_refuses_a_parameter_no_control_maps(jack_server, tmp_path, monkeypatch):
+    from host.play import LiveHost, PlayOptions
+
+    monkeypatch.setenv("SHEAFSYNTH_USER_DIR", str(tmp_path / "b"))     # prepare() points it at --bank-dir
+
+    path = tmp_path / "ramp-probe.json"
+    path.write_text(json.dumps(RAMP_PROBE))
+    host = LiveHost(PlayOptions(preset=str(path), device="JACK", rate=RATE, bank_dir=str(tmp_path / "b"),
+                                learn="decay"))
+    with pytest.raises(InputError, match="no control"):
+        host.prepare()
+    # a mapped one is learned over the range its control gives
+    host = LiveHost(PlayOptions(preset=str(path), device="JACK", rate=RATE, bank_dir=str(tmp_path / "b"),
+                                learn="level"))
+    host.prepare()
+    assert host.slot.translator.learn_target == "level"
 
 
 # ------------------------------------------------------------------ command line
