@@ -46,15 +46,20 @@ def _load(preset_arg: str, sets: list[str] | None = None):
     return preset
 
 
-def _instrument(args, preset):
-    """An Instrument with the ramp times the stability certificate asks for."""
+def _instrument(args, preset, knobs_move: bool = True):
+    """An Instrument with the ramp times the stability certificate asks for.
+
+    ``knobs_move=False`` (a take with no controller messages, like the demo
+    phrase) needs no ramp limits: no parameter moves while a note sounds.
+    """
     from engine.analysis import ramp_limits
     from engine.instrument import Instrument
 
     if getattr(args, "no_limiter", False):
         print("warning: the output limiter is OFF. " + CAUTION, file=sys.stderr)
+    ramps = ramp_limits(preset, args.rate) if knobs_move else {}
     return Instrument(preset, rate=args.rate, max_block=512, seed=args.seed,
-                      limiter=not getattr(args, "no_limiter", False), min_ramp_s=ramp_limits(preset, args.rate))
+                      limiter=not getattr(args, "no_limiter", False), min_ramp_s=ramps)
 
 
 def _guard(args, preset) -> None:
@@ -175,7 +180,7 @@ def _run_demo(args) -> int:
     args.no_limiter = False
     for path in factory_presets():
         preset = load_preset(path)
-        inst = _instrument(args, preset)
+        inst = _instrument(args, preset, knobs_move=False)   # the phrase has notes only
         audio, _ = render_midi(inst, midi_path)
         wav = write_wav(out_dir / f"{path.stem}.wav", audio, inst.rate)
         print(f"  {wav}  {len(audio) / inst.rate:5.2f} s  peak {_peak_dbfs(audio):6.1f} dBFS  "

@@ -36,6 +36,7 @@ import sys
 import tempfile
 import threading
 import time
+from array import array
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -54,6 +55,53 @@ DRAIN_WAIT_S = 0.05        # longest wait for the ring to drain before a switch,
 RETIRE_WAIT_S = 2.0        # longest wait for a faded instance to be released, s
 GIL_SWITCH_S = 0.0005      # interpreter switch interval while playing, s
 LOG_LIMIT = 200_000        # most MIDI messages / anchors kept for the report
+
+
+class _MidiLog:
+    """(arrival stamp, bytes) of received MIDI messages, packed: about 15 bytes a message,
+    so a long session with --report does not grow the resident memory by megabytes."""
+
+    def __init__(self) -> None:
+        self._stamps = array("q")
+        self._ends = array("Q")
+        self._data = bytearray()
+
+    def __len__(self) -> int:
+        return len(self._stamps)
+
+    def append(self, item) -> None:
+        stamp, data = item
+        self._data.extend(bytes(data))
+        self._stamps.append(int(stamp))
+        self._ends.append(len(self._data))
+
+    def to_list(self) -> list:
+        out, start = [], 0
+        for stamp, end in zip(self._stamps, self._ends):
+            out.append([stamp, list(self._data[start:end])])
+            start = end
+        return out
+
+
+class _PairLog:
+    """[int, int] pairs (timing anchors), packed."""
+
+    def __init__(self) -> None:
+        self._a = array("q")
+        self._b = array("q")
+
+    def __len__(self) -> int:
+        return len(self._a)
+
+    def __getitem__(self, i: int) -> list:
+        return [self._a[i], self._b[i]]
+
+    def append(self, item) -> None:
+        self._a.append(int(item[0]))
+        self._b.append(int(item[1]))
+
+    def to_list(self) -> list:
+        return [[a, b] for a, b in zip(self._a, self._b)]
 
 
 @dataclass
@@ -531,8 +579,8 @@ class LiveHost:
         h = self.inst.handle()
         self.slot.gens[0] = self.rt.set_kernel(h.render_fn, h.state, keep=self.inst)
         if o.report is not None:
-            self._log_midi = []
-            self._anchors = [] if o.record else None
+            self._log_midi = _MidiLog()
+            self._anchors = _PairLog() if o.record else None
         frames_recorded = 0
         old_handlers = {}
         error: BaseException | None = None
@@ -757,8 +805,8 @@ class LiveHost:
         }
         if self._log_midi is not None:
             rep["timing"] = {"clock": "CLOCK_MONOTONIC ns",
-                             "midi": self._log_midi,
-                             "anchors": self._anchors if self._anchors is not None else []}
+                             "midi": self._log_midi.to_list(),
+                             "anchors": self._anchors.to_list() if self._anchors is not None else []}
         return rep
 
     def _all_slots(self) -> list[_Slot]:

@@ -245,7 +245,7 @@ class MidiSender:
                 pytest.fail(f"no JACK MIDI port {target!r} appeared (ports: {names})")
             time.sleep(0.05)
         self.mo.open_port(hits[0])
-        time.sleep(0.2)
+        time.sleep(0.6)          # the connection takes a few JACK cycles to carry events
 
     def send(self, data) -> None:
         self.mo.send_message(list(data))

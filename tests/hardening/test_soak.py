@@ -127,7 +127,9 @@ def test_soak_300_events_per_second(live, tmp_path):
     if out:
         with open(out, "w", encoding="utf-8") as fh:
             json.dump(figures, fh, indent=1)
-    assert rep["midi"]["received"] == len(timeline), "messages were lost on the way in"
+    # every message arrives in a run without xruns; JACK drops MIDI of the cycles it skips
+    if rep["xruns"] == 0:
+        assert rep["midi"]["received"] == len(timeline), "messages were lost on the way in"
     assert rep["xruns"] == 0, f"{rep['xruns']} xruns (worst callback {rep['load_worst']:.2f} of the period)"
     assert rep["load_p999"] is not None and rep["load_p999"] < 0.5, \
         f"p99.9 callback time {rep['load_p999']:.2f} of the block period"

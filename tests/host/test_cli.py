@@ -17,7 +17,7 @@ from tests.measure import cents, fundamental
 
 def run(*args, cwd=None):
     return subprocess.run([sys.executable, "-m", "host.cli", *args], capture_output=True, text=True,
-                          cwd=cwd, timeout=300)
+                          cwd=cwd, timeout=900)
 
 
 def test_render_note_writes_a_wav(tmp_path):

@@ -77,8 +77,8 @@ class FakeInput(MidiInputBase):
 
 
 def test_find_port_is_a_case_insensitive_substring():
-    names = ["Midi Through:Midi Through Port-0 14:0", "KeyStep 32:KeyStep MIDI 1 20:0"]
-    assert find_port(names, "keystep") == 1
+    names = ["Midi Through:Midi Through Port-0 14:0", "Porch Keys 25:Porch Keys MIDI 1 20:0"]
+    assert find_port(names, "porch keys") == 1
     assert find_port(names, "nothing") is None
 
 
