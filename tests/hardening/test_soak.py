@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 
 from engine.lower import LIMITER_CEILING
+from tests.conftest import realtime_criteria
 from tests.hardening.conftest import soak_seconds
 
 pytestmark = [pytest.mark.live, pytest.mark.slow]
@@ -130,12 +131,10 @@ def test_soak_300_events_per_second(live, tmp_path):
     # every message arrives in a run without xruns; JACK drops MIDI of the cycles it skips
     if rep["xruns"] == 0:
         assert rep["midi"]["received"] == len(timeline), "messages were lost on the way in"
-    assert rep["xruns"] == 0, f"{rep['xruns']} xruns (worst callback {rep['load_worst']:.2f} of the period)"
-    assert rep["load_p999"] is not None and rep["load_p999"] < 0.5, \
-        f"p99.9 callback time {rep['load_p999']:.2f} of the block period"
     assert rep["nonfinite_samples"] == 0 and np.all(np.isfinite(x))
     assert peak <= LIMITER_CEILING * (1 + 1e-6), f"output peak {peak} above the ceiling {LIMITER_CEILING}"
     assert rep["kernel_errors"] == 0
     assert len(rep["programs"]) >= seconds / 4, "too few program changes were carried out"
     assert growth_kib is not None and len(after) >= 2 * (seconds - WARMUP_S) * 0.8
     assert growth_kib < RSS_GROWTH_LIMIT_KIB, f"resident memory grew {growth_kib / 1024:.1f} MB after {WARMUP_S:g} s"
+    realtime_criteria(rep)

@@ -30,6 +30,8 @@ import pytest
 import soundfile
 
 from engine.errors import InputError
+from tests.conftest import realtime_criteria
+
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from measure import cents, fundamental, spectral_centroid  # noqa: E402
@@ -326,6 +328,8 @@ def main_session(jack_server, tmp_path_factory):
 def test_session_counts_every_message(main_session):
     rep = main_session["rep"]
     m = rep["midi"]
+    if rep["xruns"]:
+        realtime_criteria(rep)
     assert m["received"] == main_session["sent"], (
         f"{m['received']} of {main_session['sent']} messages arrived; xruns {rep['xruns']} "
         "(an xrun on the JACK server drops that cycle's MIDI)\n" + main_session["log"])
@@ -528,15 +532,14 @@ def test_soak_300_events_per_second(jack_server, fewer_jack_clients, tmp_path):
         sender.close()
     assert play.wait() == 0, play.log()
     rep, x = play.results()
-    # An xrun on the JACK server can also drop that cycle's MIDI: check xruns first.
-    assert rep["xruns"] == 0, (f"{rep['xruns']} xruns (worst callback {rep['load_worst']:.2f} of the period, "
-                               f"p99.9 {rep['load_p999']:.2f}); is the machine busy with something else?")
-    assert rep["midi"]["received"] == len(tl) and rep["midi"]["malformed"] == 0
+    assert rep["midi"]["malformed"] == 0
     assert rep["events"]["dropped"] == 0
     assert rep["nonfinite_samples"] == 0 and np.all(np.isfinite(x))
-    assert rep["load_p999"] < 0.5, f"p99.9 callback time {rep['load_p999']:.2f} of the block period"
     assert rep["voices_stolen"] > 0            # more notes than voices: the allocator stole
     assert rep["guard_resets"] == 0
+    # An xrun on the JACK server also drops that cycle's MIDI: timing criteria last.
+    realtime_criteria(rep)
+    assert rep["midi"]["received"] == len(tl)
 
 
 # ------------------------------------------------------------------ port vanishing
