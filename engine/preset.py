@@ -330,7 +330,14 @@ def save_preset(doc: Mapping | Preset, path: str | os.PathLike) -> Path:
     raw = doc.raw if isinstance(doc, Preset) else dict(doc)
     check_values(raw)
     parse_preset(copy.deepcopy(raw), str(path))  # never write an invalid preset
-    text = dump_preset(raw)
+    return atomic_write_text(path, dump_preset(raw))
+
+
+def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
+    """Write ``text`` so readers see the old file or the new one, never a part.
+
+    Temp file in the same folder, fsync, rename, fsync of the folder.
+    """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".tmp", dir=target.parent)

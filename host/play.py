@@ -229,20 +229,9 @@ def _check_output(index: int, rate: float, device_rate: float) -> None:
 
 
 def _atomic_write_text(path: Path, text: str) -> None:
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    from engine.preset import atomic_write_text
+
+    atomic_write_text(path, text)
 
 
 class LiveHost:
