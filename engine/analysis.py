@@ -201,6 +201,17 @@ def frozen(prog: StepProgram, box, notes) -> dict:
                         worst = pt
                     continue
             sysm = assemble(prog, theta, note)
+            if sysm.n_states > EXACT_MAX_STATES:
+                # no bound below 1: an eigenvalue found outside the unit circle
+                # by shift-invert proves instability without the slow full scan
+                lo = _slowest_mode_radius(sysm)
+                if lo is not None and lo > 1.0 + MARGIN:
+                    pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": lo,
+                          "exact": False, "lower_bound": lo, "states": sysm.n_states}
+                    points.append(pt)
+                    if worst is None or lo > worst["radius"]:
+                        worst = pt
+                    continue
             r, z, drift = _exact_radius_drift(sysm.A)
             exact = True
             pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": r,
