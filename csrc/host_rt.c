@@ -87,6 +87,10 @@ struct ss_host {
     float *aux;                    /* max_block */
     ss_host_counters work;         /* audio thread's running counters */
 
+    /* xrun log: audio thread appends, control thread reads (count published last) */
+    int64_t xrun_ns[SS_HOST_XRUN_LOG];
+    uint64_t xrun_logged;          /* atomic */
+
     /* published counters, seqlock */
     uint64_t seq;
     ss_host_counters pub;
@@ -364,6 +368,10 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
     w->callbacks++;
     if (status_flags & paOutputUnderflow) w->underflows++;
     if (status_flags & paOutputOverflow) w->overflows++;
+    if ((status_flags & (paOutputUnderflow | paOutputOverflow)) && h->xrun_logged < SS_HOST_XRUN_LOG) {
+        h->xrun_ns[h->xrun_logged] = t0;
+        __atomic_store_n(&h->xrun_logged, h->xrun_logged + 1, __ATOMIC_RELEASE);
+    }
     if (status_flags & paPrimingOutput) w->priming++;
     if (__atomic_exchange_n(&h->peak_reset_req, 0, __ATOMIC_ACQ_REL)) w->peak_hold = 0.0f;
     if (frames == 0) goto publish;
@@ -488,6 +496,16 @@ publish:
         __atomic_store_n(&h->seq, s + 2, __ATOMIC_RELEASE);
     }
     return paContinue;
+}
+
+int ss_host_xrun_times(const ss_host *h, int64_t *out, int max)
+{
+    uint64_t n, i;
+    if (!h || !out || max < 0) return SS_HOST_ERR_ARG;
+    n = __atomic_load_n(&h->xrun_logged, __ATOMIC_ACQUIRE);
+    if (n > (uint64_t)max) n = (uint64_t)max;
+    for (i = 0; i < n; i++) out[i] = h->xrun_ns[i];
+    return (int)n;
 }
 
 int ss_host_callback(const void *input, void *output, unsigned long frames,

@@ -44,6 +44,7 @@ typedef struct PaStreamCallbackTimeInfo {
 #define SS_HOST_HIST_SPAN 2         /* histogram spans 0..2 block periods */
 #define SS_HOST_MAX_CHANNELS 8
 #define SS_HOST_BLOCK_EVENTS 512    /* events handed to a kernel per block */
+#define SS_HOST_XRUN_LOG 1024       /* xrun times kept (the first ones) */
 
 #define SS_HOST_OK 0
 #define SS_HOST_ERR_BUSY -10        /* a kernel switch is still pending */
@@ -124,6 +125,10 @@ uint64_t ss_host_read_record(ss_host *h, float *out, uint64_t max_frames);
 /* Control thread.  Consistent copy of the counters; SS_HOST_OK or
  * SS_HOST_ERR_RETRY. */
 int ss_host_snapshot(ss_host *h, ss_host_counters *out);
+/* Control thread.  CLOCK_MONOTONIC start times (ns) of the callbacks that
+ * were flagged with an xrun, the first SS_HOST_XRUN_LOG of them; copies up
+ * to max and returns the number copied. */
+int ss_host_xrun_times(const ss_host *h, int64_t *out, int max);
 /* Ask the audio thread to restart peak_hold at its next callback. */
 void ss_host_reset_peak(ss_host *h);
 

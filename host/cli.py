@@ -219,7 +219,7 @@ COMMANDS: list[tuple[str, str, object, object]] = [
 
 def _register_optional() -> None:
     """Subcommands that live in their own modules (added when present)."""
-    for modname in ("host.play", "host.check_cmd", "host.bench"):
+    for modname in ("host.play", "host.check_cmd", "host.bench", "host.jitter_cmd"):
         try:
             mod = __import__(modname, fromlist=["COMMAND"])
         except ImportError as e:

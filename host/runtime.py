@@ -53,7 +53,8 @@ typedef struct PaStreamCallbackTimeInfo {
 } PaStreamCallbackTimeInfo;
 """
 
-_SOURCE = '#include "host_rt.c"\n'
+_HEADERS = ("host_rt.h", "stall_probe.h")
+_SOURCE = '#include "host_rt.c"\n#include "stall_probe.c"\n'
 
 _ERR_BUSY = -10
 _ERR_FULL = -11
@@ -68,13 +69,16 @@ class KernelSwitchError(AudioError):
     """A kernel switch could not be handed to the audio thread."""
 
 
-def _cdef() -> str:
-    text = (CSRC_DIR / "host_rt.h").read_text(encoding="utf-8")
+def _cdef_part(name: str) -> str:
+    text = (CSRC_DIR / name).read_text(encoding="utf-8")
     try:
-        body = text.split("/* CDEF-BEGIN */", 1)[1].split("/* CDEF-END */", 1)[0]
+        return text.split("/* CDEF-BEGIN */", 1)[1].split("/* CDEF-END */", 1)[0]
     except IndexError:
-        raise BuildError("csrc/host_rt.h lacks its CDEF-BEGIN / CDEF-END markers") from None
-    return _PA_TYPES + body
+        raise BuildError(f"csrc/{name} lacks its CDEF-BEGIN / CDEF-END markers") from None
+
+
+def _cdef() -> str:
+    return _PA_TYPES + "".join(_cdef_part(name) for name in _HEADERS)
 
 
 def load_runtime(*, strict: bool = False) -> CompiledModule:
@@ -311,6 +315,13 @@ class HostRuntime:
         values = {name: getattr(c, name) for name in _COUNTER_FIELDS}
         values["fading_active"] = bool(values["fading_active"])
         return HostCounters(hist=tuple(c.hist), hist_bin_width=self._bin_width, **values)
+
+    def xrun_times(self) -> list[int]:
+        """CLOCK_MONOTONIC start times (ns) of the callbacks flagged with an xrun (the first 1024)."""
+        cap = int(self.lib.SS_HOST_XRUN_LOG)
+        buf = self.ffi.new("int64_t[]", cap)
+        n = self.lib.ss_host_xrun_times(self._ptr, buf, cap)
+        return [int(buf[i]) for i in range(max(0, n))]
 
     def process(self, frames: int, now_ns: int, flags: int = 0) -> np.ndarray:
         """Run one callback by hand at CLOCK_MONOTONIC time now_ns.

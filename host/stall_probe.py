@@ -1,0 +1,175 @@
+"""How promptly this machine wakes a real-time thread, and which xruns that explains.
+
+An xrun means some part of the audio graph missed its deadline.  On a
+shared or virtual machine that is often nobody's code: the machine did not
+run any thread on a CPU for a while (the hypervisor took the CPU, a deep
+idle state was slow to leave).  :class:`StallProbe` runs csrc/stall_probe.c
+-- one real-time thread per CPU that only sleeps to block-period deadlines
+and notes how late it woke -- beside the audio.  :func:`explain_xruns` then
+sets each xrun against the stalls the probe saw just before it: an xrun
+with a stall in its window is the machine's; one without is the host's
+own (too slow a callback, or something blocking the audio thread).
+
+The probe runs in the host runtime module (engine.build, tag "host"); it
+costs a clock read per CPU and block.
+"""
+
+from __future__ import annotations
+
+import bisect
+import dataclasses
+from typing import Iterable, Sequence
+
+from engine.errors import AudioError
+
+__all__ = ["StallProbe", "ProbeReading", "Stall", "explain_xruns", "STALL_FRACTION",
+           "EXPLAIN_WINDOW_S", "PROBE_PRIORITY"]
+
+STALL_FRACTION = 0.25     # a wake-up later than this part of a block period is a stall
+EXPLAIN_WINDOW_S = 0.025  # a stall ending at most this long before an xrun is reported explains it
+PROBE_PRIORITY = 80       # SCHED_FIFO; above a JACK server's usual 70 so audio load cannot delay it
+
+
+class ProbeError(AudioError):
+    """The stall probe could not start."""
+
+
+@dataclasses.dataclass(frozen=True)
+class Stall:
+    """One late wake-up: the deadline it missed (CLOCK_MONOTONIC ns), by how much (ns), on which CPU."""
+
+    deadline_ns: int
+    late_ns: int
+    cpu: int
+
+
+@dataclasses.dataclass(frozen=True)
+class ProbeReading:
+    """Totals of a probe: wake-ups, stalls, lateness histogram (bin edges in µs)."""
+
+    period_s: float
+    stall_threshold_s: float
+    wakes: int
+    stalls: int
+    skipped: int
+    hist: tuple[int, ...]
+    bin_edges_us: tuple[float, ...]
+    worst_late_s: float
+    cpus: int
+    realtime: bool
+    priority: int
+    pinned: bool
+
+    def as_dict(self) -> dict:
+        d = dataclasses.asdict(self)
+        d["hist"] = list(self.hist)
+        d["bin_edges_us"] = list(self.bin_edges_us)
+        return d
+
+    def quantile_upper_us(self, q: float) -> float | None:
+        """Upper bin edge (µs) below which a fraction ``q`` of wake-ups fell; None in the open bin."""
+        total = sum(self.hist)
+        if total == 0:
+            return None
+        acc = 0
+        for i, n in enumerate(self.hist):
+            acc += n
+            if acc >= q * total:
+                return self.bin_edges_us[i] if i < len(self.bin_edges_us) else None
+        return None
+
+
+class StallProbe:
+    """One pinned real-time sleeper per CPU (``start``/``stop`` or a ``with`` block)."""
+
+    def __init__(self, period_s: float, *, stall_fraction: float = STALL_FRACTION,
+                 priority: int = PROBE_PRIORITY):
+        if not 1e-4 <= float(period_s) <= 1.0:
+            raise ValueError(f"probe period {period_s!r} s must be within 0.0001..1")
+        if not 0.0 < float(stall_fraction) <= 10.0:
+            raise ValueError(f"stall fraction {stall_fraction!r} must be within 0..10")
+        if not 1 <= int(priority) <= 99:
+            raise ValueError(f"probe priority {priority!r} must be within 1..99")
+        from host.runtime import load_runtime
+
+        mod = load_runtime()
+        self.ffi, self.lib = mod.ffi, mod.lib
+        self.period_s = float(period_s)
+        self.stall_s = float(period_s) * float(stall_fraction)
+        self.priority = int(priority)
+        self._ptr = None
+
+    def start(self) -> "StallProbe":
+        if self._ptr is not None:
+            return self
+        ptr = self.lib.ss_probe_start(int(round(self.period_s * 1e9)), int(round(self.stall_s * 1e9)),
+                                      self.priority)
+        if ptr == self.ffi.NULL:
+            raise ProbeError("the stall probe could not start a thread")
+        self._ptr = ptr
+        return self
+
+    def stop(self) -> None:
+        if self._ptr is not None:
+            self.lib.ss_probe_stop(self._ptr)
+            self._ptr = None
+
+    def __enter__(self) -> "StallProbe":
+        return self.start()
+
+    def __exit__(self, *exc) -> None:
+        self.stop()
+
+    @property
+    def running(self) -> bool:
+        return self._ptr is not None
+
+    def read(self) -> ProbeReading:
+        if self._ptr is None:
+            raise ProbeError("the stall probe is not running")
+        st = self.ffi.new("ss_probe_stats *")
+        self.lib.ss_probe_read(self._ptr, st)
+        edges = tuple(float(self.lib.ss_probe_bin_edges_us[i]) for i in range(self.lib.SS_PROBE_BINS - 1))
+        return ProbeReading(
+            period_s=self.period_s, stall_threshold_s=self.stall_s, wakes=int(st.wakes),
+            stalls=int(st.stalls), skipped=int(st.skipped), hist=tuple(int(x) for x in st.hist),
+            bin_edges_us=edges, worst_late_s=int(st.worst_late_ns) * 1e-9, cpus=int(st.cpus),
+            realtime=bool(st.realtime), priority=int(st.priority), pinned=bool(st.pinned))
+
+    def stalls(self, limit: int = 1 << 16) -> list[Stall]:
+        """The stalls kept so far (oldest first per CPU; the ring keeps the last 4096 per CPU)."""
+        if self._ptr is None:
+            raise ProbeError("the stall probe is not running")
+        d = self.ffi.new("int64_t[]", limit)
+        late = self.ffi.new("int64_t[]", limit)
+        cpu = self.ffi.new("int32_t[]", limit)
+        n = self.lib.ss_probe_stalls(self._ptr, d, late, cpu, limit)
+        out = [Stall(int(d[i]), int(late[i]), int(cpu[i])) for i in range(max(0, n))]
+        out.sort(key=lambda s: s.deadline_ns)
+        return out
+
+
+def explain_xruns(xrun_ns: Sequence[int], stalls: Iterable[Stall], *,
+                  window_s: float = EXPLAIN_WINDOW_S) -> list[float | None]:
+    """For each xrun time, the gap in s from the end of the latest stall that overlaps
+    ``[t - window_s, t]`` to ``t`` (0 when the stall was still going on), or None when
+    no stall falls in the window -- an xrun the machine does not explain.
+
+    ``xrun_ns`` are the start times of the callbacks flagged with an xrun: the
+    flag reaches the callback after the cycle that missed, so the cause lies
+    before it.
+    """
+    spans = sorted((s.deadline_ns, s.deadline_ns + s.late_ns) for s in stalls)
+    starts = [a for a, _ in spans]
+    w = int(window_s * 1e9)
+    out: list[float | None] = []
+    for t in xrun_ns:
+        i = bisect.bisect_right(starts, t)          # stalls that began at or before t
+        best = None
+        for a, b in reversed(spans[max(0, i - 64):i]):
+            if b < t - w:
+                continue
+            gap = max(0, t - b) * 1e-9
+            best = gap if best is None else min(best, gap)
+        out.append(best)
+    return out
