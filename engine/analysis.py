@@ -277,6 +277,15 @@ def _cached(key: str):
         return None
 
 
+def is_checked(preset: Preset, notes: Iterable[int] | None = None, rate: float = 48000.0) -> bool:
+    """True when a full ``check`` report for ``preset`` is in the cache (so guarding it is quick).
+
+    ``sheafsynth check NAME`` stores its report at the default rate and notes.
+    """
+    notes = check_notes(preset, notes)
+    return _cached(_preset_hash(preset, notes, rate)) is not None
+
+
 def _store(key: str, report: dict) -> None:
     p = _cache_path(key)
     try:

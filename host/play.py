@@ -126,6 +126,8 @@ class PlayOptions:
     no_limiter: bool = False
     sets: dict[str, float] = field(default_factory=dict)
     seed: int = 0
+    stall_probe: bool = False
+    shallow_idle: bool = False
 
     def check(self) -> None:
         """Raise InputError naming the first bad option."""
@@ -257,6 +259,10 @@ class LiveHost:
         self.midi_malformed = 0
         self.midi_errors = 0
         self.program_log: list[dict] = []
+        self.probe = None
+        self.idle = None
+        self._idle_held: bool | None = None
+        self._probe_result = None
         self._pedal = 0
         self._bend_frac = 0.0
         self._log_midi: list | None = None
@@ -358,10 +364,8 @@ class LiveHost:
         except ImportError:
             return True
         try:
-            notes = A.check_notes(preset, None)
-            # `sheafsynth check NAME` stores the report at its default rate
-            return A._cached(A._preset_hash(preset, notes, 48000.0)) is not None
-        except Exception:   # another version of the analysis module: treat as unchecked
+            return A.is_checked(preset)
+        except Exception:   # an analysis that cannot read this preset: treat it as unchecked
             return False
 
     def _learn(self, slot: _Slot, parameter: str) -> str | None:
@@ -589,6 +593,17 @@ class LiveHost:
             if abs(self.audio.rate - self.rate) > 1e-6:
                 raise AudioError(f"the device runs at {self.audio.rate:g} Hz, not {self.rate:g} Hz; "
                                  f"pass --rate {self.audio.rate:g}")
+            if o.shallow_idle:
+                from host.idle_latency import ShallowIdle
+
+                self.idle = ShallowIdle().open()
+                self._idle_held = self.idle.held
+                if not self.idle.held:
+                    self._say(f"--shallow-idle: {self.idle.reason}; the CPUs may still sleep deeply")
+            if o.stall_probe:
+                from host.stall_probe import StallProbe
+
+                self.probe = StallProbe(o.buffer / self.rate).start()
             t_start = time.monotonic()
             for sig in (signal.SIGINT, signal.SIGTERM):
                 old_handlers[sig] = signal.signal(sig, lambda *_: self._stop.set())
@@ -615,6 +630,9 @@ class LiveHost:
             finally:
                 frames_recorded = self.audio.stop_recording() if o.record is not None else 0
                 self.audio.close()
+                self._read_probe()
+                if self.idle is not None:
+                    self.idle.close()
                 if self.midi is not None:
                     self.midi.close()
                 if error is not None and o.report is not None:       # best effort: counters up to the failure
@@ -792,11 +810,41 @@ class LiveHost:
                         for s in self._all_slots() for cc, name in s.translator.learned],
             "saved_presets": self.saved,
         }
+        rep["shallow_idle"] = self._idle_held
+        machine = self._machine_report()
+        if machine is not None:
+            rep["machine"] = machine
         if self._log_midi is not None:
             rep["timing"] = {"clock": "CLOCK_MONOTONIC ns",
                              "midi": self._log_midi.to_list(),
                              "anchors": self._anchors.to_list() if self._anchors is not None else []}
         return rep
+
+    def _read_probe(self) -> None:
+        """Stop the stall probe and keep what it saw (after the stream has closed)."""
+        probe, self.probe = self.probe, None
+        if probe is None:
+            return
+        try:
+            self._probe_result = (probe.read(), probe.stalls())
+        finally:
+            probe.stop()
+
+    def _machine_report(self) -> dict | None:
+        """The stall probe's figures and which xruns the machine's stalls explain."""
+        if self._probe_result is None:
+            return None
+        from host.stall_probe import EXPLAIN_WINDOW_S, explain_xruns
+
+        reading, stalls = self._probe_result
+        xrun_ns = self.rt.xrun_times()
+        gaps = explain_xruns(xrun_ns, stalls)
+        return {"probe": reading.as_dict(), "explain_window_s": EXPLAIN_WINDOW_S,
+                "xrun_times_ns": xrun_ns,
+                "xrun_stall_gap_s": gaps,
+                "xruns_explained": sum(g is not None for g in gaps),
+                "xruns_unexplained": sum(g is None for g in gaps),
+                "stalls": [[st.deadline_ns, st.late_ns, st.cpu] for st in stalls[:4096]]}
 
     def _all_slots(self) -> list[_Slot]:
         """Every slot once (the start preset may be outside the bank)."""
@@ -826,6 +874,12 @@ def _add_play(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="noise seed")
     p.add_argument("--no-limiter", action="store_true", help="turn the output safety limiter off (not advised)")
     p.add_argument("--allow-unstable", action="store_true", help="play even if the preset is not stable")
+    p.add_argument("--stall-probe", action="store_true",
+                   help="watch how promptly the machine wakes real-time threads, and tell in --report "
+                        "which xruns its stalls explain")
+    p.add_argument("--shallow-idle", action="store_true",
+                   help="while playing, keep the CPUs out of slow idle states (Linux /dev/cpu_dma_latency; "
+                        "needs the right to open it; costs power)")
 
 
 def _run_play(args) -> int:
@@ -836,7 +890,8 @@ def _run_play(args) -> int:
                        channel=args.channel, seconds=args.seconds, record=args.record, report=args.report,
                        learn=args.learn, bank_dir=args.bank_dir, save_as=args.save_as,
                        allow_unstable=args.allow_unstable, no_limiter=args.no_limiter,
-                       sets=_parse_set(args.set), seed=args.seed)
+                       sets=_parse_set(args.set), seed=args.seed, stall_probe=args.stall_probe,
+                       shallow_idle=args.shallow_idle)
     if opts.no_limiter:
         print("warning: the output limiter is OFF. " + CAUTION, file=sys.stderr)
     host = LiveHost(opts)
