@@ -32,8 +32,19 @@ def _jack_running(env) -> bool:
     except (OSError, subprocess.SubprocessError):
         return False
     if probe[0] == "jack_wait":
-        return r.stdout.strip() == "running"
+        return r.stdout.strip().splitlines()[-1:] == ["running"]   # a verbose server adds lines before
     return r.returncode == 0
+
+
+def _may_use_fifo() -> bool:
+    """True when this process may schedule threads SCHED_FIFO (root, or an rtprio limit)."""
+    try:
+        old = os.sched_getscheduler(0), os.sched_getparam(0)
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(1))
+    except (OSError, AttributeError):
+        return False
+    os.sched_setscheduler(0, old[0], old[1])
+    return True
 
 
 @pytest.fixture(scope="session")
@@ -51,9 +62,10 @@ def jack_server(tmp_path_factory):
     proc = None
     if not _jack_running(env):
         log = tmp_path_factory.mktemp("jack") / "jackd.log"
+        mode = ["-R", "-P", "70"] if _may_use_fifo() else ["--no-realtime"]
         with open(log, "wb") as fh:
             proc = subprocess.Popen(
-                ["jackd", "--no-realtime", "-d", "dummy", "-r", "48000", "-p", "128"],
+                ["jackd", *mode, "-d", "dummy", "-r", "48000", "-p", "128"],
                 stdout=fh, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, env=env)
         deadline = time.monotonic() + 15
         while not _jack_running(env):
@@ -91,24 +103,64 @@ def jack_device(jack_server):
     return devs[0]
 
 
-def realtime_criteria(rep: dict, limit_p999: float = 0.5) -> None:
-    """Apply the real-time acceptance criteria (zero xruns, p99.9 callback time).
+LIVE_PLAY_FLAGS = ("--stall-probe", "--shallow-idle")
+"""Flags every live test gives ``sheafsynth play``: the stall probe tells which xruns the
+machine caused, and shallow idle keeps the CPUs quick to wake (both cost next to nothing)."""
 
-    JACK's dummy backend runs without real-time priority here, so a busy
-    machine can make it miss cycles that are none of the host's doing.  With
-    SHEAFSYNTH_STRICT_TIMING=1 a miss fails the test; otherwise it is
-    recorded as an expected failure carrying the figures, so a shared
-    machine's load cannot hide every other result.  Call it after the
-    checks that do not depend on timing.
+
+def unexplained_xruns(rep: dict) -> int | None:
+    """Xruns the stall probe does not put down to the machine; None without a real-time probe."""
+    m = rep.get("machine")
+    if not m or not m.get("probe", {}).get("realtime"):
+        return None
+    logged = len(m["xrun_times_ns"])
+    beyond_log = max(0, int(rep.get("xruns", 0)) - logged) if logged >= 1024 else 0   # csrc SS_HOST_XRUN_LOG
+    return int(m["xruns_unexplained"]) + beyond_log
+
+
+def realtime_criteria(rep: dict, limit_p999: float = 0.5) -> None:
+    """Apply the real-time acceptance criteria: no xrun of the host's own, p99.9 callback time.
+
+    ``rep`` is a play report.  Pass when there are no xruns, or when the
+    stall probe (``play --stall-probe``, running SCHED_FIFO) saw the machine
+    stall just before every one of them -- no thread on that CPU could run,
+    so no audio code could have met the deadline -- and when the 99.9th
+    percentile callback time stays under ``limit_p999`` block periods.  An
+    xrun the machine does not explain fails.  Without a real-time probe
+    (no permission for SCHED_FIFO) the machine cannot be judged: a miss is
+    then an expected failure carrying the figures, unless
+    SHEAFSYNTH_STRICT_TIMING=1.  Call it after the checks that do not
+    depend on timing.
     """
-    xruns = rep.get("xruns", 0)
+    xruns = int(rep.get("xruns", 0))
     p999 = rep.get("load_p999")
-    ok = xruns == 0 and p999 is not None and p999 < limit_p999
-    if ok:
+    p999_ok = p999 is not None and p999 < limit_p999
+    unexplained = unexplained_xruns(rep)
+    if p999_ok and (xruns == 0 or unexplained == 0):
+        if xruns:
+            m = rep["machine"]
+            print(f"\n{xruns} xrun(s), every one just after a machine stall the probe saw "
+                  f"(worst wake-up {m['probe']['worst_late_s'] * 1e3:.1f} ms late, "
+                  f"{m['probe']['stalls']} stalls)")
         return
     load = os.getloadavg()[0]
-    text = (f"real-time criteria missed: {xruns} xruns, p99.9 callback {p999} of the period "
-            f"(load average {load:.1f} on {os.cpu_count()} cores)")
-    if os.environ.get("SHEAFSYNTH_STRICT_TIMING") == "1":
+    text = (f"real-time criteria missed: {xruns} xruns "
+            f"({'no real-time stall probe' if unexplained is None else f'{unexplained} not explained by a machine stall'}), "
+            f"p99.9 callback {p999} of the period (limit {limit_p999}; load average {load:.1f} on "
+            f"{os.cpu_count()} cores)")
+    if unexplained is not None or os.environ.get("SHEAFSYNTH_STRICT_TIMING") == "1":
         pytest.fail(text)
     pytest.xfail(text + "; set SHEAFSYNTH_STRICT_TIMING=1 to make this a failure")
+
+
+def midi_loss_explained(rep: dict, sent: int, per_xrun: int = 16) -> bool:
+    """True when every sent message arrived, or the shortfall fits the xruns the machine caused.
+
+    JACK drops the MIDI of the cycles it skips, so a machine stall loses the
+    messages of those cycles; ``per_xrun`` bounds how many one xrun may take.
+    """
+    received = int(rep["midi"]["received"])
+    if received == sent:
+        return True
+    xruns = int(rep.get("xruns", 0))
+    return xruns > 0 and unexplained_xruns(rep) == 0 and sent - received <= per_xrun * xruns

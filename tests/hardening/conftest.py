@@ -29,6 +29,8 @@ from pathlib import Path
 
 import pytest
 
+from tests.conftest import LIVE_PLAY_FLAGS
+
 REPO = Path(__file__).resolve().parents[2]
 LIVE_RATE = 48000
 LIVE_BLOCK = 128
@@ -156,7 +158,7 @@ class PlayProcess:
         self.wav_path = tmp / "out.wav" if record else None
         cmd = [sys.executable, "-m", "host.cli", "play", preset, "--device", "JACK",
                "--rate", str(LIVE_RATE), "--buffer", str(LIVE_BLOCK), "--seconds", str(seconds),
-               "--report", str(self.report_path), *extra]
+               "--report", str(self.report_path), *LIVE_PLAY_FLAGS, *extra]
         if virtual:
             cmd += ["--virtual-midi", virtual]
         if record:
