@@ -90,6 +90,10 @@ struct ss_host {
     /* xrun log: audio thread appends, control thread reads (count published last) */
     int64_t xrun_ns[SS_HOST_XRUN_LOG];
     uint64_t xrun_logged;          /* atomic */
+    /* slow-callback log (longer than half a period): start and duration, same rules */
+    int64_t slow_start_ns[SS_HOST_SLOW_LOG];
+    int64_t slow_dur_ns[SS_HOST_SLOW_LOG];
+    uint64_t slow_logged;          /* atomic */
 
     /* published counters, seqlock */
     uint64_t seq;
@@ -483,6 +487,11 @@ publish:
         int b = bin >= (double)(SS_HOST_HIST_BINS - 1) ? SS_HOST_HIST_BINS - 1 : (int)bin;
         if (b < 0) b = 0;
         if (frames) w->hist[b]++;
+        if (frames && 2.0 * (double)dur > period_ns && h->slow_logged < SS_HOST_SLOW_LOG) {
+            h->slow_start_ns[h->slow_logged] = t0;
+            h->slow_dur_ns[h->slow_logged] = dur;
+            __atomic_store_n(&h->slow_logged, h->slow_logged + 1, __ATOMIC_RELEASE);
+        }
         w->cb_last_ns = (uint64_t)dur;
         if ((uint64_t)dur > w->cb_worst_ns) w->cb_worst_ns = (uint64_t)dur;
         w->last_start_ns = (uint64_t)now_ns;
@@ -505,6 +514,19 @@ int ss_host_xrun_times(const ss_host *h, int64_t *out, int max)
     n = __atomic_load_n(&h->xrun_logged, __ATOMIC_ACQUIRE);
     if (n > (uint64_t)max) n = (uint64_t)max;
     for (i = 0; i < n; i++) out[i] = h->xrun_ns[i];
+    return (int)n;
+}
+
+int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns, int max)
+{
+    uint64_t n, i;
+    if (!h || !start_ns || !dur_ns || max < 0) return SS_HOST_ERR_ARG;
+    n = __atomic_load_n(&h->slow_logged, __ATOMIC_ACQUIRE);
+    if (n > (uint64_t)max) n = (uint64_t)max;
+    for (i = 0; i < n; i++) {
+        start_ns[i] = h->slow_start_ns[i];
+        dur_ns[i] = h->slow_dur_ns[i];
+    }
     return (int)n;
 }
 

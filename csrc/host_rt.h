@@ -45,6 +45,7 @@ typedef struct PaStreamCallbackTimeInfo {
 #define SS_HOST_MAX_CHANNELS 8
 #define SS_HOST_BLOCK_EVENTS 512    /* events handed to a kernel per block */
 #define SS_HOST_XRUN_LOG 1024       /* xrun times kept (the first ones) */
+#define SS_HOST_SLOW_LOG 1024       /* slow callbacks (over half a period) kept (the first ones) */
 
 #define SS_HOST_OK 0
 #define SS_HOST_ERR_BUSY -10        /* a kernel switch is still pending */
@@ -129,6 +130,10 @@ int ss_host_snapshot(ss_host *h, ss_host_counters *out);
  * were flagged with an xrun, the first SS_HOST_XRUN_LOG of them; copies up
  * to max and returns the number copied. */
 int ss_host_xrun_times(const ss_host *h, int64_t *out, int max);
+/* Control thread.  Start times and durations (CLOCK_MONOTONIC ns) of the
+ * callbacks that took longer than half a block period, the first
+ * SS_HOST_SLOW_LOG of them; copies up to max, returns the number copied. */
+int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns, int max);
 /* Ask the audio thread to restart peak_hold at its next callback. */
 void ss_host_reset_peak(ss_host *h);
 

@@ -23,6 +23,8 @@ import threading
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from engine.errors import AudioError
 from host.runtime import HostCounters, HostRuntime, KernelSwitchError
 
@@ -120,6 +122,7 @@ class Recorder:
         self.path = Path(path)
         self._subtype = subtype
         self._poll = poll_s
+        self._buf: np.ndarray | None = None     # reused: no allocation per drain
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._file = None
@@ -154,7 +157,9 @@ class Recorder:
             self._error = exc
 
     def _drain(self) -> int:
-        block = self._rt.read_record()
+        if self._buf is None:
+            self._buf = np.empty((1 << 14, self._rt.channels), dtype=np.float32)
+        block = self._rt.read_record(out=self._buf)
         if len(block):
             self._file.write(block)
             self.frames_written += len(block)

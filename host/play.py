@@ -834,16 +834,22 @@ class LiveHost:
         """The stall probe's figures and which xruns the machine's stalls explain."""
         if self._probe_result is None:
             return None
-        from host.stall_probe import EXPLAIN_WINDOW_S, explain_xruns
+        from host.stall_probe import EXPLAIN_WINDOW_S, explain_xruns, xrun_causes
 
         reading, stalls = self._probe_result
         xrun_ns = self.rt.xrun_times()
+        slow = self.rt.slow_callbacks()
         gaps = explain_xruns(xrun_ns, stalls)
+        causes = xrun_causes(xrun_ns, stalls, slow, reading.period_s)
         return {"probe": reading.as_dict(), "explain_window_s": EXPLAIN_WINDOW_S,
                 "xrun_times_ns": xrun_ns,
                 "xrun_stall_gap_s": gaps,
+                "xrun_causes": causes,
                 "xruns_explained": sum(g is not None for g in gaps),
                 "xruns_unexplained": sum(g is None for g in gaps),
+                "xruns_slow_callback": causes.count("slow callback"),
+                "xruns_elsewhere": causes.count("elsewhere in the graph"),
+                "slow_callbacks": [[a, d] for a, d in slow],
                 "stalls": [[st.deadline_ns, st.late_ns, st.cpu] for st in stalls[:4096]]}
 
     def _all_slots(self) -> list[_Slot]:

@@ -297,11 +297,21 @@ class HostRuntime:
         return int(self.lib.ss_host_now_ns())
 
     # -- recording and counters ------------------------------------------------
-    def read_record(self, max_frames: int = 1 << 16) -> np.ndarray:
-        """Drain up to max_frames recorded frames: float32 array (frames, channels)."""
-        buf = np.empty((max_frames, self.channels), dtype=np.float32)
-        n = self.lib.ss_host_read_record(self._ptr, self.ffi.from_buffer("float[]", buf), max_frames)
-        return buf[:n]
+    def read_record(self, max_frames: int = 1 << 16, out: np.ndarray | None = None) -> np.ndarray:
+        """Drain up to max_frames recorded frames: float32 array (frames, channels).
+
+        With ``out`` (float32, C-contiguous, shape (n, channels)) the frames go
+        there and a view of it is returned: a recorder that reuses one buffer
+        allocates nothing per call.
+        """
+        if out is None:
+            out = np.empty((max_frames, self.channels), dtype=np.float32)
+        elif out.dtype != np.float32 or out.ndim != 2 or out.shape[1] != self.channels \
+                or not out.flags.c_contiguous:
+            raise ValueError(f"read_record: out must be C-contiguous float32 (n, {self.channels})")
+        max_frames = min(int(max_frames), out.shape[0])
+        n = self.lib.ss_host_read_record(self._ptr, self.ffi.from_buffer("float[]", out), max_frames)
+        return out[:n]
 
     def counters(self) -> HostCounters:
         """A consistent snapshot of the counters."""
@@ -322,6 +332,14 @@ class HostRuntime:
         buf = self.ffi.new("int64_t[]", cap)
         n = self.lib.ss_host_xrun_times(self._ptr, buf, cap)
         return [int(buf[i]) for i in range(max(0, n))]
+
+    def slow_callbacks(self) -> list[tuple[int, int]]:
+        """(start ns, duration ns) of the callbacks longer than half a block period (the first 1024)."""
+        cap = int(self.lib.SS_HOST_SLOW_LOG)
+        start = self.ffi.new("int64_t[]", cap)
+        dur = self.ffi.new("int64_t[]", cap)
+        n = self.lib.ss_host_slow_callbacks(self._ptr, start, dur, cap)
+        return [(int(start[i]), int(dur[i])) for i in range(max(0, n))]
 
     def process(self, frames: int, now_ns: int, flags: int = 0) -> np.ndarray:
         """Run one callback by hand at CLOCK_MONOTONIC time now_ns.

@@ -7,8 +7,11 @@ idle state was slow to leave).  :class:`StallProbe` runs csrc/stall_probe.c
 -- one real-time thread per CPU that only sleeps to block-period deadlines
 and notes how late it woke -- beside the audio.  :func:`explain_xruns` then
 sets each xrun against the stalls the probe saw just before it: an xrun
-with a stall in its window is the machine's; one without is the host's
-own (too slow a callback, or something blocking the audio thread).
+with a stall in its window is the machine's.  :func:`xrun_causes` goes on
+with the runtime's log of slow callbacks: an xrun after a callback of ours
+that took most of the period is the host's own; one with neither happened
+elsewhere in the audio graph (another client, or the server, missed the
+cycle while our callback was in time).
 
 The probe runs in the host runtime module (engine.build, tag "host"); it
 costs a clock read per CPU and block.
@@ -22,11 +25,12 @@ from typing import Iterable, Sequence
 
 from engine.errors import AudioError
 
-__all__ = ["StallProbe", "ProbeReading", "Stall", "explain_xruns", "STALL_FRACTION",
+__all__ = ["StallProbe", "ProbeReading", "Stall", "explain_xruns", "xrun_causes", "STALL_FRACTION",
            "EXPLAIN_WINDOW_S", "PROBE_PRIORITY"]
 
 STALL_FRACTION = 0.25     # a wake-up later than this part of a block period is a stall
 EXPLAIN_WINDOW_S = 0.025  # a stall ending at most this long before an xrun is reported explains it
+SLOW_FRACTION = 0.75      # a callback longer than this part of the period can make the cycle miss
 PROBE_PRIORITY = 80       # SCHED_FIFO; above a JACK server's usual 70 so audio load cannot delay it
 
 
@@ -172,4 +176,30 @@ def explain_xruns(xrun_ns: Sequence[int], stalls: Iterable[Stall], *,
             gap = max(0, t - b) * 1e-9
             best = gap if best is None else min(best, gap)
         out.append(best)
+    return out
+
+
+def xrun_causes(xrun_ns: Sequence[int], stalls: Iterable[Stall], slow: Sequence[tuple[int, int]],
+                period_s: float, *, window_s: float = EXPLAIN_WINDOW_S,
+                slow_fraction: float = SLOW_FRACTION) -> list[str]:
+    """Each xrun's likely cause: "machine stall", "slow callback" or "elsewhere in the graph".
+
+    A machine stall in the window comes first (it also makes callbacks slow).
+    Else a callback of ours that began in the window and took more than
+    ``slow_fraction`` of the block period (``slow``: (start ns, duration ns),
+    from the runtime's log) is the host's own.  Else our callbacks were in
+    time and no CPU stalled: another client of the audio graph, or the
+    server, missed the cycle.
+    """
+    gaps = explain_xruns(xrun_ns, stalls, window_s=window_s)
+    limit = slow_fraction * period_s * 1e9
+    starts = sorted(a for a, d in slow if d > limit)
+    w = int(window_s * 1e9)
+    out = []
+    for t, gap in zip(xrun_ns, gaps):
+        if gap is not None:
+            out.append("machine stall")
+            continue
+        i = bisect.bisect_left(starts, t - w)
+        out.append("slow callback" if i < len(starts) and starts[i] <= t else "elsewhere in the graph")
     return out

@@ -20,7 +20,7 @@ import pytest
 
 from host.idle_latency import ShallowIdle
 from host.runtime import HostRuntime
-from host.stall_probe import Stall, StallProbe, explain_xruns
+from host.stall_probe import Stall, StallProbe, explain_xruns, xrun_causes
 
 REPO = Path(__file__).resolve().parents[2]
 PA_OUTPUT_UNDERFLOW = 0x4      # PortAudio v19 portaudio.h: paOutputUnderflow
@@ -80,6 +80,40 @@ def test_explain_xruns_windows():
     assert got[5] is None
     assert explain_xruns([], stalls) == []
     assert explain_xruns(xr[:2], []) == [None, None]
+
+
+def test_xrun_causes_put_the_machine_first_then_our_slow_callbacks():
+    period = 0.002
+    stalls = [_st(100.0, 3.0)]
+    slow = [(int(98.0e6), int(1.9e6)),       # slow, but a stall covers it: the machine's
+            (int(300.0e6), int(1.8e6)),      # 0.9 of the period: ours
+            (int(600.0e6), int(1.2e6))]      # 0.6 of the period: cannot make a cycle miss by itself
+    xr = [int(x * 1e6) for x in (104.0, 305.0, 606.0, 900.0)]
+    assert xrun_causes(xr, stalls, slow, period) == [
+        "machine stall", "slow callback", "elsewhere in the graph", "elsewhere in the graph"]
+
+
+def test_runtime_logs_slow_callbacks():
+    """Callbacks over half the period are logged with their start and duration."""
+    from engine.instrument import Instrument
+
+    inst = Instrument("presets/curb-plate.json", rate=48000, max_block=128)
+    for k in range(6):
+        inst.note_on(50 + k, 100)
+    inst.process(128)                       # the notes reach the kernel: six plate voices ring
+    h = inst.handle()
+    # The runtime told the rate is 4.8 MHz: a 128-frame period of 27 µs, which
+    # six plate voices take far longer than half of; an empty callback does not.
+    rt = HostRuntime(4_800_000, 128)
+    t = rt.now_ns()
+    rt.process(128, t)                      # no kernel yet: fast, not logged
+    rt.set_kernel(h.render_fn, h.state, keep=inst)
+    for k in range(1, 4):
+        rt.process(128, t + k * 26_667)
+    slow = rt.slow_callbacks()
+    assert 3 <= len(slow) <= 4           # (the empty one only if the machine stalled in it)
+    assert all(d > 0.5 * 128 / 4_800_000 * 1e9 for _, d in slow)
+    assert [a for a, _ in slow] == sorted(a for a, _ in slow)
 
 
 def test_runtime_logs_xrun_times():
