@@ -55,6 +55,7 @@ DRAIN_WAIT_S = 0.05        # longest wait for the ring to drain before a switch,
 RETIRE_WAIT_S = 2.0        # longest wait for a faded instance to be released, s
 GIL_SWITCH_S = 0.0005      # interpreter switch interval while playing, s
 LOG_LIMIT = 200_000        # most MIDI messages / anchors kept for the report
+ANCHOR_EVERY_S = 0.05      # audio-clock anchors for the report: one callback's (frame, time) this often
 
 
 class _MidiLog:
@@ -128,6 +129,7 @@ class PlayOptions:
     seed: int = 0
     stall_probe: bool = False
     shallow_idle: bool = False
+    timing_log: bool = True             # --report keeps every MIDI arrival and audio-clock anchors
 
     def check(self) -> None:
         """Raise InputError naming the first bad option."""
@@ -572,8 +574,9 @@ class LiveHost:
         h = self.inst.handle()
         self.slot.gens[0] = self.rt.set_kernel(h.render_fn, h.state, keep=self.inst)
         if o.report is not None:
-            self._log_midi = _MidiLog()
-            self._anchors = _PairLog() if o.record else None
+            if o.timing_log:
+                self._log_midi = _MidiLog()
+                self._anchors = _PairLog() if o.record else None
         frames_recorded = 0
         old_handlers = {}
         error: BaseException | None = None
@@ -672,6 +675,7 @@ class LiveHost:
         period_ns = o.buffer / self.rate * 1e9
         last_cb, last_cb_t = -1, time.monotonic()
         next_status = 0.0
+        next_anchor = 0.0
         learn_cycle = 0
         while not self._stop.is_set():
             now = time.monotonic()
@@ -683,10 +687,12 @@ class LiveHost:
             elif now - last_cb_t > STALL_S:
                 raise AudioError(f"the audio device stopped: no callback for {STALL_S:g} s")
             anchors = self._anchors
-            if anchors is not None and c.last_frames and len(anchors) < LOG_LIMIT:
+            if anchors is not None and c.last_frames and len(anchors) < LOG_LIMIT \
+                    and now >= next_anchor:
                 a = [int(c.frames - c.last_frames), int(c.last_start_ns)]
                 if not anchors or anchors[-1] != a:
                     anchors.append(a)
+                    next_anchor = now + ANCHOR_EVERY_S
             if now >= next_status:
                 next_status = now + STATUS_EVERY_S
                 self._print_messages(status)
@@ -880,6 +886,9 @@ def _add_play(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="noise seed")
     p.add_argument("--no-limiter", action="store_true", help="turn the output safety limiter off (not advised)")
     p.add_argument("--allow-unstable", action="store_true", help="play even if the preset is not stable")
+    p.add_argument("--no-timing-log", action="store_true",
+                   help="leave the per-message MIDI arrival log and audio-clock anchors out of --report "
+                        "(counters only; for long sessions)")
     p.add_argument("--stall-probe", action="store_true",
                    help="watch how promptly the machine wakes real-time threads, and tell in --report "
                         "which xruns its stalls explain")
@@ -897,7 +906,7 @@ def _run_play(args) -> int:
                        learn=args.learn, bank_dir=args.bank_dir, save_as=args.save_as,
                        allow_unstable=args.allow_unstable, no_limiter=args.no_limiter,
                        sets=_parse_set(args.set), seed=args.seed, stall_probe=args.stall_probe,
-                       shallow_idle=args.shallow_idle)
+                       shallow_idle=args.shallow_idle, timing_log=not args.no_timing_log)
     if opts.no_limiter:
         print("warning: the output limiter is OFF. " + CAUTION, file=sys.stderr)
     host = LiveHost(opts)
