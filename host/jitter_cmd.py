@@ -69,8 +69,13 @@ def _verdict(d: dict) -> str:
                 "thread; real-time audio needs SCHED_FIFO (rtprio limits, or root)")
     if d["stalls"] == 0 and worst_ms < 0.25 * period_ms:
         return f"fit: every wake-up came within a quarter of the {period_ms:.2f} ms block"
-    return (f"{d['stalls_per_minute']:.0f} stalls a minute, worst {worst_ms:.1f} ms against a "
-            f"{period_ms:.2f} ms block: expect xruns about that often at this buffer, whatever plays")
+    per_min = 60.0 / d["seconds"]
+    if d["skipped"]:
+        return (f"unfit at this buffer: {d['skipped'] * per_min:.0f} block deadlines a minute passed while "
+                f"a CPU stalled (worst {worst_ms:.1f} ms), each one an xrun whatever plays; "
+                f"try a bigger --buffer or a quieter machine")
+    return (f"{d['stalls_per_minute']:.0f} stalls a minute took over a quarter of the {period_ms:.2f} ms block "
+            f"(worst {worst_ms:.1f} ms): xruns become likely when the instrument's work is heavy")
 
 
 def _print_pass(title: str, d: dict) -> None:

@@ -173,3 +173,16 @@ def test_jitter_command_text_and_bad_input():
     assert "5.33 ms" in r.stdout and "stalls" in r.stdout
     bad = _cli("jitter", "--seconds", "0")
     assert bad.returncode == 2 and "--seconds" in bad.stderr and "Traceback" not in bad.stderr
+
+
+def test_jitter_verdicts():
+    from host.jitter_cmd import _verdict
+
+    base = dict(period_s=128 / 48000, seconds=10.0, realtime=True, stalls=0, skipped=0,
+                stalls_per_minute=0.0, worst_late_s=0.0001)
+    assert _verdict(base).startswith("fit")
+    some = dict(base, stalls=5, stalls_per_minute=30.0, worst_late_s=0.0012)
+    assert "30 stalls a minute" in _verdict(some)
+    bad = dict(base, stalls=5, stalls_per_minute=30.0, skipped=4, worst_late_s=0.012)
+    assert _verdict(bad).startswith("unfit") and "24 block deadlines a minute" in _verdict(bad)
+    assert "real-time priority" in _verdict(dict(base, realtime=False))
