@@ -146,7 +146,7 @@ def _ring_mask(prog: StepProgram, b) -> str:
     return f"m{b.index}" if b.pitch else f"{prog.ring_size[b.index] - 1}u"
 
 
-def _loop_slack(prog: StepProgram, b) -> float:
+def loop_slack(prog: StepProgram, b) -> float:
     """Upper bound of (pitch delay length) / period for the tuning loop through ``b``.
 
     engine.tuning: length = period - rest, and rest loses at most half a
@@ -502,12 +502,12 @@ def generate(prog: StepProgram) -> str:
         if b.is_delay:
             if b.pitch:
                 # Per note the ring covers the longest loop any bend (+-SSK_MAX_BEND)
-                # and parameter value can ask for (_loop_slack), so a short note's
+                # and parameter value can ask for (loop_slack), so a short note's
                 # voice touches a small ring: same output, less memory traffic.
                 w("    {")
                 w(f"        const double pmax = SSK_RATE / (ss_note_hz((double)v->note - (double)SSK_MAX_BEND) * "
                   f"{dnum(b.pitch_ratio)} * pow(2.0, {dnum(b.pitch_cents)} / 1200.0));")
-                w(f"        double need = pmax * {dnum(_loop_slack(prog, b))};")
+                w(f"        double need = pmax * {dnum(loop_slack(prog, b))};")
                 w("        uint32_t size = 4u;")
                 w("        if (need < pmax + 1.5) need = pmax + 1.5;")
                 w(f"        while (size < {prog.ring_size[b.index]}u && (double)size < need + 2.5) size <<= 1;")

@@ -357,26 +357,16 @@ def _kernel_ring_floats(prog, blk, note: int) -> int:
     """Ring floats the kernel gives a voice of ``note`` on pitch delay ``blk``.
 
     The kernel's rule (ssk_voice_reset in the generated C): room for the
-    period at note - MAX_BEND semitones times the loop's slack -- 1 plus a
+    period at note - MAX_BEND semitones times the loop's slack (engine.codegen.loop_slack) -- 1 plus a
     half for every filter on the loop and every wire gain that can turn
     negative (each can add at most half a period of phase delay) -- plus 2.5
     samples, as a power of two, at most the preset's ring.
     """
+    from engine.codegen import loop_slack
     from engine.lower import MAX_BEND_SEMITONES
 
-    lp = prog.loops[blk.loop]
-    k = sum(1 for st in lp.steps if st.block != lp.tuner and not prog.blocks[st.block].is_delay)
-    box = {p.name: (p.lo, p.hi) for p in prog.params}
-    for g in lp.gains:
-        lo = g.const
-        for sym, c in g.terms:
-            if sym not in box:
-                lo = -1.0
-                break
-            lo += min(c * box[sym][0], c * box[sym][1])
-        k += lo < 0.0
     pmax = RATE / (_note_hz(note - MAX_BEND_SEMITONES) * blk.pitch_ratio * 2.0 ** (blk.pitch_cents / 1200.0))
-    need = max(pmax * (1.0 + 0.5 * k), pmax + 1.5)
+    need = max(pmax * loop_slack(prog, blk), pmax + 1.5)
     size = 4
     while size < prog.ring_size[blk.index] and size < need + 2.5:
         size *= 2

@@ -33,7 +33,6 @@ import math
 import os
 import signal
 import sys
-import tempfile
 import threading
 import time
 from array import array

@@ -29,7 +29,7 @@ import pytest
 from engine.errors import AudioError
 from engine.instrument import Instrument
 from engine.lower import GUARD_LIMIT, LIMITER_CEILING
-from tests.hardening.conftest import REPO
+from tests.live import REPO
 
 RATE = 48000
 BLOCK = 256

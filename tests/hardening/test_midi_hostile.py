@@ -25,7 +25,6 @@ from hypothesis import strategies as st
 from engine import voicing as V
 from engine.instrument import Instrument
 from engine.lower import LIMITER_CEILING
-from engine.preset import load_preset
 from host.controls import MidiTranslator
 from host.midi import parse
 

@@ -26,7 +26,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.hardening.conftest import REPO
+from tests.live import REPO
 
 NAME = "kill-test"
 

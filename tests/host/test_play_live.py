@@ -21,16 +21,15 @@ import random
 import signal
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 
 import numpy as np
 import pytest
-import soundfile
 
 from engine.errors import InputError
-from tests.conftest import LIVE_PLAY_FLAGS, midi_loss_explained, realtime_criteria
+from tests.conftest import midi_loss_explained, realtime_criteria
+from tests.live import MidiSender, PlayProcess
 
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
@@ -56,97 +55,14 @@ def release_t60(f0: float, g: float) -> float:
 
 # ------------------------------------------------------------------ helpers
 
-class Play:
-    """A running ``sheafsynth play`` process with its report and recording paths."""
-
-    def __init__(self, tmp: Path, args: list[str], seconds: float):
-        self.report_path = tmp / "report.json"
-        self.wav_path = tmp / "out.wav"
-        cmd = [sys.executable, "-m", "host.cli", "play", *args, "--device", "JACK", "--rate", str(RATE),
-               "--buffer", str(BLOCK), "--seconds", str(seconds),
-               "--report", str(self.report_path), "--record", str(self.wav_path), *LIVE_PLAY_FLAGS]
-        env = dict(os.environ, JACK_NO_START_SERVER="1", PYTHONUNBUFFERED="1")
-        self.proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                                     stdin=subprocess.DEVNULL, text=True, env=env)
-        self.out: list[str] = []
-        self.err: list[str] = []
-        self.ready = threading.Event()
-        self._threads = [threading.Thread(target=self._pump, args=(self.proc.stdout, self.out, True), daemon=True),
-                         threading.Thread(target=self._pump, args=(self.proc.stderr, self.err, False), daemon=True)]
-        for t in self._threads:
-            t.start()
-
-    def _pump(self, stream, lines, watch):
-        for line in stream:
-            lines.append(line.rstrip("\n"))
-            if watch and line.startswith("playing "):
-                self.ready.set()
-
-    def wait_ready(self, timeout: float = 300.0) -> None:
-        deadline = time.monotonic() + timeout
-        while not self.ready.wait(0.1):
-            if self.proc.poll() is not None or time.monotonic() > deadline:
-                self.proc.kill()
-                pytest.fail(f"sheafsynth play did not start (rc {self.proc.poll()}):\n" + self.log())
-        time.sleep(0.1)
-
-    def wait(self, timeout: float = 60.0) -> int:
-        try:
-            rc = self.proc.wait(timeout)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            pytest.fail("sheafsynth play did not stop by itself:\n" + self.log())
-        for t in self._threads:
-            t.join(5)
-        return rc
-
-    def log(self) -> str:
-        return "stdout:\n" + "\n".join(self.out) + "\nstderr:\n" + "\n".join(self.err)
-
-    def results(self):
-        rep = json.loads(self.report_path.read_text())
-        x, fs = soundfile.read(str(self.wav_path), dtype="float32", always_2d=True)
-        assert fs == RATE
-        return rep, x[:, 0].astype(np.float64)
+def Play(tmp: Path, args: list[str], seconds: float) -> PlayProcess:
+    """``sheafsynth play PRESET [options]`` on JACK with --report and --record (tests.live)."""
+    return PlayProcess(tmp, args[0], seconds, extra=args[1:], virtual=None)
 
 
-class Sender:
-    """A JACK MIDI output (python-rtmidi's JACK API) connected to a port of the host."""
-
-    def __init__(self, target: str, client: str = "sstest-send"):
-        import rtmidi
-
-        self.mo = rtmidi.MidiOut(rtapi=rtmidi.API_UNIX_JACK, name=client)
-        deadline = time.monotonic() + 20
-        while True:
-            names = self.mo.get_ports()
-            hits = [i for i, n in enumerate(names) if target in n]
-            if hits:
-                break
-            if time.monotonic() > deadline:
-                pytest.fail(f"no JACK MIDI port {target!r} appeared (ports: {names})")
-            time.sleep(0.05)
-        self.mo.open_port(hits[0])
-        time.sleep(0.2)
-
-    def send(self, data) -> int:
-        self.mo.send_message(list(data))
-        return time.monotonic_ns()
-
-    def play(self, timeline) -> float:
-        """Send (seconds from now, bytes) items on time; returns the monotonic start (s)."""
-        t0 = time.monotonic() + 0.05
-        for t, data in sorted(timeline, key=lambda e: e[0]):
-            delay = t0 + t - time.monotonic()
-            if delay > 0:
-                time.sleep(delay)
-            self.send(data)
-        return t0
-
-    def close(self):
-        time.sleep(0.2)                  # let the last messages leave in the next JACK cycles
-        self.mo.close_port()
-        self.mo.delete()
+def Sender(target: str) -> MidiSender:
+    """A JACK MIDI output connected to the host's port (tests.live)."""
+    return MidiSender(target, client="sstest-send")
 
 
 class Timing:
