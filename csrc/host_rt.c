@@ -93,6 +93,7 @@ struct ss_host {
     /* slow-callback log (longer than half a period): start and duration, same rules */
     int64_t slow_start_ns[SS_HOST_SLOW_LOG];
     int64_t slow_dur_ns[SS_HOST_SLOW_LOG];
+    int64_t slow_cpu_ns[SS_HOST_SLOW_LOG];
     uint64_t slow_logged;          /* atomic */
 
     /* published counters, seqlock */
@@ -106,6 +107,14 @@ int64_t ss_host_now_ns(void)
 {
     struct timespec ts;
     clock_gettime(CLOCK_MONOTONIC, &ts);
+    return (int64_t)ts.tv_sec * 1000000000LL + (int64_t)ts.tv_nsec;
+}
+
+/* CPU time of the calling thread (ns); a non-blocking system call. */
+static int64_t ss_host_thread_cpu_ns_(void)
+{
+    struct timespec ts;
+    if (clock_gettime(CLOCK_THREAD_CPUTIME_ID, &ts) != 0) return -1;
     return (int64_t)ts.tv_sec * 1000000000LL + (int64_t)ts.tv_nsec;
 }
 
@@ -353,7 +362,7 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
                     unsigned long status_flags)
 {
     ss_host_counters *w;
-    int64_t t0;
+    int64_t t0, cpu0;
     unsigned long pos;
     int n_ev, ei = 0, ch, channels;
     float ceiling, peak = 0.0f;
@@ -361,6 +370,7 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
 
     if (!h || !out) return paAbort;
     t0 = ss_host_now_ns();
+    cpu0 = ss_host_thread_cpu_ns_();
 #ifdef SS_HOST_HAVE_MXCSR
     _mm_setcsr(_mm_getcsr() | 0x8040);             /* flush-to-zero, denormals-are-zero */
 #endif
@@ -490,6 +500,10 @@ publish:
         if (frames && 2.0 * (double)dur > period_ns && h->slow_logged < SS_HOST_SLOW_LOG) {
             h->slow_start_ns[h->slow_logged] = t0;
             h->slow_dur_ns[h->slow_logged] = dur;
+            {
+                int64_t cpu1 = ss_host_thread_cpu_ns_();
+                h->slow_cpu_ns[h->slow_logged] = (cpu0 >= 0 && cpu1 >= cpu0) ? cpu1 - cpu0 : -1;
+            }
             __atomic_store_n(&h->slow_logged, h->slow_logged + 1, __ATOMIC_RELEASE);
         }
         w->cb_last_ns = (uint64_t)dur;
@@ -517,7 +531,8 @@ int ss_host_xrun_times(const ss_host *h, int64_t *out, int max)
     return (int)n;
 }
 
-int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns, int max)
+int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns, int64_t *cpu_ns,
+                           int max)
 {
     uint64_t n, i;
     if (!h || !start_ns || !dur_ns || max < 0) return SS_HOST_ERR_ARG;
@@ -526,6 +541,7 @@ int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns,
     for (i = 0; i < n; i++) {
         start_ns[i] = h->slow_start_ns[i];
         dur_ns[i] = h->slow_dur_ns[i];
+        if (cpu_ns) cpu_ns[i] = h->slow_cpu_ns[i];
     }
     return (int)n;
 }

@@ -132,8 +132,12 @@ int ss_host_snapshot(ss_host *h, ss_host_counters *out);
 int ss_host_xrun_times(const ss_host *h, int64_t *out, int max);
 /* Control thread.  Start times and durations (CLOCK_MONOTONIC ns) of the
  * callbacks that took longer than half a block period, the first
- * SS_HOST_SLOW_LOG of them; copies up to max, returns the number copied. */
-int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns, int max);
+ * SS_HOST_SLOW_LOG of them, with the CPU time the audio thread spent in each
+ * (CLOCK_THREAD_CPUTIME_ID ns: where the kernel accounts steal time, as on a
+ * PARAVIRT_TIME_ACCOUNTING guest, time the thread was off its CPU does not
+ * count).  cpu_ns may be NULL.  Copies up to max, returns the number copied. */
+int ss_host_slow_callbacks(const ss_host *h, int64_t *start_ns, int64_t *dur_ns, int64_t *cpu_ns,
+                           int max);
 /* Ask the audio thread to restart peak_hold at its next callback. */
 void ss_host_reset_peak(ss_host *h);
 

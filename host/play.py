@@ -603,9 +603,9 @@ class LiveHost:
                 if not self.idle.held:
                     self._say(f"--shallow-idle: {self.idle.reason}; the CPUs may still sleep deeply")
             if o.stall_probe:
-                from host.stall_probe import StallProbe
+                from host.stall_probe import PLAY_TICKS, StallProbe
 
-                self.probe = StallProbe(o.buffer / self.rate).start()
+                self.probe = StallProbe(o.buffer / self.rate, ticks_per_period=PLAY_TICKS).start()
             t_start = time.monotonic()
             for sig in (signal.SIGINT, signal.SIGTERM):
                 old_handlers[sig] = signal.signal(sig, lambda *_: self._stop.set())
@@ -816,7 +816,7 @@ class LiveHost:
             "saved_presets": self.saved,
         }
         rep["shallow_idle"] = self._idle_held
-        machine = self._machine_report()
+        machine = self._machine_report(elapsed)
         if machine is not None:
             rep["machine"] = machine
         if self._log_midi is not None:
@@ -835,11 +835,12 @@ class LiveHost:
         finally:
             probe.stop()
 
-    def _machine_report(self) -> dict | None:
+    def _machine_report(self, elapsed: float) -> dict | None:
         """The stall probe's figures and which xruns the machine's stalls explain."""
         if self._probe_result is None:
             return None
-        from host.stall_probe import EXPLAIN_WINDOW_S, explain_xruns, xrun_causes
+        from host.stall_probe import (CAUSE_ELSEWHERE, CAUSE_PREEMPTED, CAUSE_SLOW, EXPLAIN_WINDOW_S,
+                                      explain_coverage, explain_xruns, xrun_causes)
 
         reading, stalls = self._probe_result
         xrun_ns = self.rt.xrun_times()
@@ -847,14 +848,16 @@ class LiveHost:
         gaps = explain_xruns(xrun_ns, stalls)
         causes = xrun_causes(xrun_ns, stalls, slow, reading.period_s)
         return {"probe": reading.as_dict(), "explain_window_s": EXPLAIN_WINDOW_S,
+                "explain_coverage": explain_coverage(stalls, elapsed),
                 "xrun_times_ns": xrun_ns,
                 "xrun_stall_gap_s": gaps,
                 "xrun_causes": causes,
                 "xruns_explained": sum(g is not None for g in gaps),
                 "xruns_unexplained": sum(g is None for g in gaps),
-                "xruns_slow_callback": causes.count("slow callback"),
-                "xruns_elsewhere": causes.count("elsewhere in the graph"),
-                "slow_callbacks": [[a, d] for a, d in slow],
+                "xruns_preempted": causes.count(CAUSE_PREEMPTED),
+                "xruns_slow_callback": causes.count(CAUSE_SLOW),
+                "xruns_elsewhere": causes.count(CAUSE_ELSEWHERE),
+                "slow_callbacks": [list(c) for c in slow],
                 "stalls": [[st.deadline_ns, st.late_ns, st.cpu] for st in stalls[:4096]]}
 
     def _all_slots(self) -> list[_Slot]:

@@ -17,7 +17,7 @@ from __future__ import annotations
 import dataclasses
 import threading
 import time
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -27,6 +27,7 @@ from engine.errors import AudioError, BuildError
 __all__ = [
     "HostRuntime",
     "HostCounters",
+    "SlowCallback",
     "KernelSwitchError",
     "load_runtime",
     "EV_NOTE_ON", "EV_NOTE_OFF", "EV_PARAM", "EV_BEND", "EV_SUSTAIN",
@@ -94,6 +95,21 @@ def load_runtime(*, strict: bool = False) -> CompiledModule:
         if not strict:
             _runtime.append(mod)
         return mod
+
+
+class SlowCallback(NamedTuple):
+    """One callback that took longer than half a block period.
+
+    ``dur_ns`` is wall-clock time; ``cpu_ns`` the time the audio thread was on
+    its CPU meanwhile (None if the clock could not be read).  Where the kernel
+    leaves steal time out of thread CPU time (a paravirtual guest, as CI's VM
+    is) a callback far longer than its CPU time was held off the CPU -- by the
+    hypervisor or a higher-priority thread -- rather than slow itself.
+    """
+
+    start_ns: int
+    dur_ns: int
+    cpu_ns: int | None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -333,13 +349,15 @@ class HostRuntime:
         n = self.lib.ss_host_xrun_times(self._ptr, buf, cap)
         return [int(buf[i]) for i in range(max(0, n))]
 
-    def slow_callbacks(self) -> list[tuple[int, int]]:
-        """(start ns, duration ns) of the callbacks longer than half a block period (the first 1024)."""
+    def slow_callbacks(self) -> list[SlowCallback]:
+        """The callbacks longer than half a block period (the first 1024), oldest first."""
         cap = int(self.lib.SS_HOST_SLOW_LOG)
         start = self.ffi.new("int64_t[]", cap)
         dur = self.ffi.new("int64_t[]", cap)
-        n = self.lib.ss_host_slow_callbacks(self._ptr, start, dur, cap)
-        return [(int(start[i]), int(dur[i])) for i in range(max(0, n))]
+        cpu = self.ffi.new("int64_t[]", cap)
+        n = self.lib.ss_host_slow_callbacks(self._ptr, start, dur, cpu, cap)
+        return [SlowCallback(int(start[i]), int(dur[i]), int(cpu[i]) if cpu[i] >= 0 else None)
+                for i in range(max(0, n))]
 
     def process(self, frames: int, now_ns: int, flags: int = 0) -> np.ndarray:
         """Run one callback by hand at CLOCK_MONOTONIC time now_ns.

@@ -9,9 +9,11 @@ and notes how late it woke -- beside the audio.  :func:`explain_xruns` then
 sets each xrun against the stalls the probe saw just before it: an xrun
 with a stall in its window is the machine's.  :func:`xrun_causes` goes on
 with the runtime's log of slow callbacks: an xrun after a callback of ours
-that took most of the period is the host's own; one with neither happened
-elsewhere in the audio graph (another client, or the server, missed the
-cycle while our callback was in time).
+that took most of the period on its CPU is the host's own; one after a
+callback that took as long but was off its CPU most of that time was
+preempted (the machine's again, a stall too short for the probe to see); one
+with neither happened elsewhere in the audio graph (another client, or the
+server, missed the cycle while our callback was in time).
 
 The probe runs in the host runtime module (engine.build, tag "host"); it
 costs a clock read per CPU and block.
@@ -25,13 +27,14 @@ from typing import Iterable, Sequence
 
 from engine.errors import AudioError
 
-__all__ = ["StallProbe", "ProbeReading", "Stall", "explain_xruns", "xrun_causes", "STALL_FRACTION",
-           "EXPLAIN_WINDOW_S", "PROBE_PRIORITY"]
+__all__ = ["StallProbe", "ProbeReading", "Stall", "explain_xruns", "explain_coverage", "xrun_causes", "CAUSES", "STALL_FRACTION",
+           "EXPLAIN_WINDOW_S", "PROBE_PRIORITY", "PLAY_TICKS"]
 
 STALL_FRACTION = 0.25     # a wake-up later than this part of a block period is a stall
 EXPLAIN_WINDOW_S = 0.025  # a stall ending at most this long before an xrun is reported explains it
 SLOW_FRACTION = 0.75      # a callback longer than this part of the period can make the cycle miss
 PROBE_PRIORITY = 80       # SCHED_FIFO; above a JACK server's usual 70 so audio load cannot delay it
+PLAY_TICKS = 4            # probe deadlines per audio block beside a running stream
 
 
 class ProbeError(AudioError):
@@ -49,9 +52,16 @@ class Stall:
 
 @dataclasses.dataclass(frozen=True)
 class ProbeReading:
-    """Totals of a probe: wake-ups, stalls, lateness histogram (bin edges in µs)."""
+    """Totals of a probe: wake-ups, stalls, lateness histogram (bin edges in µs).
+
+    ``period_s`` is the audio block period the probe stands beside, ``tick_s``
+    the time between its deadlines (a fraction of the period when it samples
+    finer, so that a stall shorter than a block still meets a deadline);
+    ``skipped`` counts deadlines of ``tick_s`` passed inside stalls.
+    """
 
     period_s: float
+    tick_s: float
     stall_threshold_s: float
     wakes: int
     stalls: int
@@ -84,21 +94,36 @@ class ProbeReading:
 
 
 class StallProbe:
-    """One pinned real-time sleeper per CPU (``start``/``stop`` or a ``with`` block)."""
+    """One pinned real-time sleeper per CPU (``start``/``stop`` or a ``with`` block).
+
+    Each sleeps to deadlines ``period_s / ticks_per_period`` apart and counts a
+    wake-up later than ``stall_fraction`` of the period as a stall.  One tick
+    per period (``sheafsynth jitter``) measures exactly what an audio thread
+    waking once a block meets.  Beside a running stream (``play
+    --stall-probe``) :data:`PLAY_TICKS` ticks per block catch every stall long
+    enough to make a block late: with deadlines a quarter period apart, any
+    stall longer than half a period crosses one and wakes it more than a
+    quarter period late.
+    """
 
     def __init__(self, period_s: float, *, stall_fraction: float = STALL_FRACTION,
-                 priority: int = PROBE_PRIORITY):
+                 priority: int = PROBE_PRIORITY, ticks_per_period: int = 1):
         if not 1e-4 <= float(period_s) <= 1.0:
             raise ValueError(f"probe period {period_s!r} s must be within 0.0001..1")
         if not 0.0 < float(stall_fraction) <= 10.0:
             raise ValueError(f"stall fraction {stall_fraction!r} must be within 0..10")
         if not 1 <= int(priority) <= 99:
             raise ValueError(f"probe priority {priority!r} must be within 1..99")
+        if not 1 <= int(ticks_per_period) <= 16:
+            raise ValueError(f"probe ticks per period {ticks_per_period!r} must be within 1..16")
         from host.runtime import load_runtime
 
         mod = load_runtime()
         self.ffi, self.lib = mod.ffi, mod.lib
         self.period_s = float(period_s)
+        # Deadlines tick_s apart (no closer than the C probe's 100 µs floor).
+        ticks = max(1, min(int(ticks_per_period), int(self.period_s / 1e-4 + 1e-9)))
+        self.tick_s = self.period_s / ticks
         self.stall_s = float(period_s) * float(stall_fraction)
         self.priority = int(priority)
         self._ptr = None
@@ -106,7 +131,7 @@ class StallProbe:
     def start(self) -> "StallProbe":
         if self._ptr is not None:
             return self
-        ptr = self.lib.ss_probe_start(int(round(self.period_s * 1e9)), int(round(self.stall_s * 1e9)),
+        ptr = self.lib.ss_probe_start(int(round(self.tick_s * 1e9)), int(round(self.stall_s * 1e9)),
                                       self.priority)
         if ptr == self.ffi.NULL:
             raise ProbeError("the stall probe could not start a thread")
@@ -135,7 +160,7 @@ class StallProbe:
         self.lib.ss_probe_read(self._ptr, st)
         edges = tuple(float(self.lib.ss_probe_bin_edges_us[i]) for i in range(self.lib.SS_PROBE_BINS - 1))
         return ProbeReading(
-            period_s=self.period_s, stall_threshold_s=self.stall_s, wakes=int(st.wakes),
+            period_s=self.period_s, tick_s=self.tick_s, stall_threshold_s=self.stall_s, wakes=int(st.wakes),
             stalls=int(st.stalls), skipped=int(st.skipped), hist=tuple(int(x) for x in st.hist),
             bin_edges_us=edges, worst_late_s=int(st.worst_late_ns) * 1e-9, cpus=int(st.cpus),
             realtime=bool(st.realtime), priority=int(st.priority), pinned=bool(st.pinned))
@@ -179,27 +204,66 @@ def explain_xruns(xrun_ns: Sequence[int], stalls: Iterable[Stall], *,
     return out
 
 
-def xrun_causes(xrun_ns: Sequence[int], stalls: Iterable[Stall], slow: Sequence[tuple[int, int]],
+def explain_coverage(stalls: Iterable[Stall], seconds: float, *, window_s: float = EXPLAIN_WINDOW_S) -> float:
+    """Fraction of a session of ``seconds`` in which an xrun would be put down to a stall.
+
+    The union of every stall stretched by the explanation window, over the
+    session length: how likely an xrun at a random instant would be explained
+    by chance.  Small (a few percent) means the explanations carry weight.
+    """
+    if seconds <= 0:
+        return 0.0
+    w = int(window_s * 1e9)
+    covered, end = 0, None
+    for a, b in sorted((s.deadline_ns, s.deadline_ns + s.late_ns + w) for s in stalls):
+        if end is None or a > end:
+            covered += b - a
+            end = b
+        elif b > end:
+            covered += b - end
+            end = b
+    return min(1.0, covered * 1e-9 / seconds)
+
+
+CAUSE_STALL = "machine stall"
+CAUSE_PREEMPTED = "preempted callback"
+CAUSE_SLOW = "slow callback"
+CAUSE_ELSEWHERE = "elsewhere in the graph"
+CAUSES = (CAUSE_STALL, CAUSE_PREEMPTED, CAUSE_SLOW, CAUSE_ELSEWHERE)
+
+
+def xrun_causes(xrun_ns: Sequence[int], stalls: Iterable[Stall], slow: Sequence[Sequence[int | None]],
                 period_s: float, *, window_s: float = EXPLAIN_WINDOW_S,
                 slow_fraction: float = SLOW_FRACTION) -> list[str]:
-    """Each xrun's likely cause: "machine stall", "slow callback" or "elsewhere in the graph".
+    """Each xrun's likely cause, one of :data:`CAUSES`.
 
-    A machine stall in the window comes first (it also makes callbacks slow).
-    Else a callback of ours that began in the window and took more than
-    ``slow_fraction`` of the block period (``slow``: (start ns, duration ns),
-    from the runtime's log) is the host's own.  Else our callbacks were in
-    time and no CPU stalled: another client of the audio graph, or the
-    server, missed the cycle.
+    A machine stall the probe saw in the window comes first (it also makes
+    callbacks slow).  Else the callbacks of ours that began in the window and
+    took more than ``slow_fraction`` of the block period decide (``slow``:
+    (start ns, duration ns[, CPU ns]) from the runtime's log): one that also
+    spent that long on its CPU is a "slow callback", the host's own; one that
+    spent less was held off its CPU (the hypervisor took the vCPU, too
+    briefly for the probe to catch) -- a "preempted callback", the
+    machine's.  A callback without a CPU time counts as slow.  Else our
+    callbacks were in time and no CPU stalled: another client of the audio
+    graph, or the server, missed the cycle.
     """
     gaps = explain_xruns(xrun_ns, stalls, window_s=window_s)
     limit = slow_fraction * period_s * 1e9
-    starts = sorted(a for a, d in slow if d > limit)
+    long_ones = sorted((int(c[0]), c[2] if len(c) > 2 else None) for c in slow if c[1] > limit)
+    starts = [a for a, _ in long_ones]
     w = int(window_s * 1e9)
     out = []
     for t, gap in zip(xrun_ns, gaps):
         if gap is not None:
-            out.append("machine stall")
+            out.append(CAUSE_STALL)
             continue
-        i = bisect.bisect_left(starts, t - w)
-        out.append("slow callback" if i < len(starts) and starts[i] <= t else "elsewhere in the graph")
+        lo, hi = bisect.bisect_left(starts, t - w), bisect.bisect_right(starts, t)
+        inside = [cpu for _, cpu in long_ones[lo:hi]]
+        if not inside:
+            out.append(CAUSE_ELSEWHERE)
+        elif any(cpu is None or cpu > limit for cpu in inside):
+            out.append(CAUSE_SLOW)
+        else:
+            out.append(CAUSE_PREEMPTED)
     return out

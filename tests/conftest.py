@@ -110,7 +110,8 @@ machine caused, and shallow idle keeps the CPUs quick to wake (both cost next to
 
 def host_xruns(rep: dict) -> int | None:
     """Xruns that are the host's own: after a callback of ours that took most of the
-    period with no machine stall to explain it (host.stall_probe.xrun_causes).
+    period, and spent it on its CPU, with no machine stall to explain it
+    (host.stall_probe.xrun_causes).
     None without a real-time probe."""
     m = rep.get("machine")
     if not m or not m.get("probe", {}).get("realtime"):
@@ -143,7 +144,9 @@ def realtime_criteria(rep: dict, limit_p999: float = 0.5) -> None:
             m = rep["machine"]
             print(f"\n{xruns} xrun(s), none the host's: {m['xruns_explained']} after a machine stall "
                   f"(worst wake-up {m['probe']['worst_late_s'] * 1e3:.1f} ms late, {m['probe']['stalls']} stalls), "
-                  f"{m['xruns_elsewhere']} elsewhere in the audio graph")
+                  f"{m['xruns_preempted']} after a callback held off its CPU, "
+                  f"{m['xruns_elsewhere']} elsewhere in the audio graph; stalls cover "
+                  f"{100 * m['explain_coverage']:.1f} % of the session")
         return
     load = os.getloadavg()[0]
     text = (f"real-time criteria missed: {xruns} xruns "

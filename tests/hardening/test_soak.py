@@ -126,6 +126,8 @@ def test_soak_300_events_per_second(live, tmp_path):
         "events_dropped": rep["events"]["dropped"], "rss_start_kib": after[0] if after else None,
         "xruns_host": host_xruns(rep), "shallow_idle": rep.get("shallow_idle"),
         "xruns_machine_stall": rep.get("machine", {}).get("xruns_explained"),
+        "xruns_preempted": rep.get("machine", {}).get("xruns_preempted"),
+        "explain_coverage": rep.get("machine", {}).get("explain_coverage"),
         "xruns_elsewhere": rep.get("machine", {}).get("xruns_elsewhere"),
         "machine_stalls": rep.get("machine", {}).get("probe", {}).get("stalls"),
         "worst_wake_late_ms": (rep.get("machine", {}).get("probe", {}).get("worst_late_s") or 0) * 1e3,

@@ -19,18 +19,20 @@ import pytest
 
 from host.idle_latency import ShallowIdle
 from host.runtime import HostRuntime
-from host.stall_probe import Stall, StallProbe, explain_xruns, xrun_causes
+from host.stall_probe import CAUSES, Stall, StallProbe, explain_coverage, explain_xruns, xrun_causes
 
 REPO = Path(__file__).resolve().parents[2]
 PA_OUTPUT_UNDERFLOW = 0x4      # PortAudio v19 portaudio.h: paOutputUnderflow
 
 
-def test_probe_counts_every_wake_on_every_cpu():
+@pytest.mark.parametrize("ticks", [1, 4])
+def test_probe_counts_every_wake_on_every_cpu(ticks):
     period = 0.002
-    with StallProbe(period) as probe:
+    with StallProbe(period, ticks_per_period=ticks) as probe:
         time.sleep(0.5)
         r = probe.read()
         stalls = probe.stalls()
+    assert r.tick_s == pytest.approx(period / ticks)
     cpus = len(os.sched_getaffinity(0))
     assert r.cpus == cpus
     assert r.wakes > 0 and sum(r.hist) == r.wakes
@@ -38,8 +40,8 @@ def test_probe_counts_every_wake_on_every_cpu():
     assert all(s.late_ns > r.stall_threshold_s * 1e9 for s in stalls)
     assert r.worst_late_s >= max((s.late_ns * 1e-9 for s in stalls), default=0.0)
     assert r.stall_threshold_s == pytest.approx(0.25 * period)
-    # every CPU's deadlines lie on one grid of whole periods of CLOCK_MONOTONIC
-    p_ns = int(round(period * 1e9))
+    # every CPU's deadlines lie on one grid of whole ticks of CLOCK_MONOTONIC
+    p_ns = int(round(period / ticks * 1e9))
     assert all(s.deadline_ns % p_ns == 0 for s in stalls)
     assert {s.cpu for s in stalls} <= set(os.sched_getaffinity(0))
 
@@ -51,6 +53,10 @@ def test_probe_rejects_bad_arguments():
         StallProbe(0.003, priority=0)
     with pytest.raises(ValueError, match="fraction"):
         StallProbe(0.003, stall_fraction=0.0)
+    with pytest.raises(ValueError, match="ticks"):
+        StallProbe(0.003, ticks_per_period=0)
+    # ticks never closer than the C probe's 100 µs floor
+    assert StallProbe(0.0003, ticks_per_period=4).tick_s == pytest.approx(0.0001)
 
 
 def test_probe_reading_quantile():
@@ -83,11 +89,105 @@ def test_xrun_causes_put_the_machine_first_then_our_slow_callbacks():
     period = 0.002
     stalls = [_st(100.0, 3.0)]
     slow = [(int(98.0e6), int(1.9e6)),       # slow, but a stall covers it: the machine's
-            (int(300.0e6), int(1.8e6)),      # 0.9 of the period: ours
+            (int(300.0e6), int(1.8e6)),      # 0.9 of the period, no CPU time known: ours
             (int(600.0e6), int(1.2e6))]      # 0.6 of the period: cannot make a cycle miss by itself
     xr = [int(x * 1e6) for x in (104.0, 305.0, 606.0, 900.0)]
     assert xrun_causes(xr, stalls, slow, period) == [
         "machine stall", "slow callback", "elsewhere in the graph", "elsewhere in the graph"]
+
+
+def test_explain_coverage_is_the_union_of_stretched_stalls():
+    # stalls of 3 ms at 100 ms and 110 ms overlap once stretched by the 25 ms window:
+    # 100..138 ms; one at 500 ms covers 500..526 ms; 64 ms of a 1 s session
+    stalls = [_st(100.0, 3.0), _st(110.0, 3.0), _st(500.0, 1.0)]
+    assert explain_coverage(stalls, 1.0) == pytest.approx(0.064)
+    assert explain_coverage([], 1.0) == 0.0
+    assert explain_coverage(stalls, 0.0) == 0.0
+    assert explain_coverage(stalls * 40, 0.01) == 1.0
+
+
+def test_xrun_causes_tell_a_preempted_callback_from_a_slow_one():
+    """A callback long in wall time but short on its CPU was held off the CPU."""
+    period = 0.002
+    slow = [(int(100.0e6), int(2.4e6), int(0.3e6)),   # 1.2 periods, 0.15 of them on the CPU
+            (int(300.0e6), int(1.8e6), int(1.7e6)),   # on the CPU nearly all the time: ours
+            (int(500.0e6), int(2.0e6), int(0.2e6)),   # a preempted one and ...
+            (int(510.0e6), int(1.9e6), int(1.6e6))]   # ... a slow one in the same window: ours
+    xr = [int(x * 1e6) for x in (104.0, 305.0, 515.0)]
+    assert xrun_causes(xr, [], slow, period) == ["preempted callback", "slow callback", "slow callback"]
+    assert set(xrun_causes(xr, [], slow, period)) <= set(CAUSES)
+
+
+_TIMING_KERNELS_CDEF = """
+typedef struct ss_event ss_event;
+typedef struct { ...; } ss_counters_t;
+int ss_test_sleep(void *state, const ss_event *events, int n_events, float *out, int frames);
+int ss_test_spin(void *state, const ss_event *events, int n_events, float *out, int frames);
+"""
+
+_TIMING_KERNELS_SOURCE = r"""
+#include <string.h>
+#include <time.h>
+#include "ss_abi.h"
+typedef ss_counters ss_counters_t;
+static long long cpu_ns_(void) {
+    struct timespec t; clock_gettime(CLOCK_THREAD_CPUTIME_ID, &t);
+    return (long long)t.tv_sec * 1000000000LL + t.tv_nsec;
+}
+/* 6 ms asleep: a callback held off its CPU that long. */
+int ss_test_sleep(void *state, const ss_event *events, int n_events, float *out, int frames) {
+    struct timespec d = {0, 6000000};
+    (void)state; (void)events; (void)n_events;
+    nanosleep(&d, NULL);
+    memset(out, 0, sizeof(float) * (size_t)frames);
+    return 0;
+}
+/* 6 ms of this thread's own CPU time: a callback that is slow itself. */
+int ss_test_spin(void *state, const ss_event *events, int n_events, float *out, int frames) {
+    long long end = cpu_ns_() + 6000000LL;
+    (void)state; (void)events; (void)n_events;
+    while (cpu_ns_() < end) { }
+    memset(out, 0, sizeof(float) * (size_t)frames);
+    return 0;
+}
+"""
+
+
+def test_callbacks_held_off_the_cpu_are_told_from_slow_ones():
+    """End to end through the runtime: a kernel that sleeps 6 ms stands in for a
+    callback the machine held off its CPU, one that burns 6 ms of its own CPU time
+    for a slow callback; the xrun flagged after each is put down to the right cause.
+
+    POSIX clock_gettime(CLOCK_THREAD_CPUTIME_ID) counts only the time the
+    thread ran, which is what tells the two apart.
+    """
+    from engine.build import compile_module
+
+    mod = compile_module(_TIMING_KERNELS_CDEF, _TIMING_KERNELS_SOURCE, tag="timing")
+    state = mod.ffi.new("ss_counters_t *")
+    rate, frames = 48000, 128                # a 2.67 ms period: both kernels overrun it
+    period_ns = frames / rate * 1e9
+    rt = HostRuntime(rate, frames)
+    t = rt.now_ns()
+    rt.set_kernel(mod.ffi.addressof(mod.lib, "ss_test_sleep"), state, keep=mod)
+    rt.process(frames, t)                    # takes the kernel, sleeps
+    rt.process(frames, t + int(period_ns), PA_OUTPUT_UNDERFLOW)
+    rt.set_kernel(mod.ffi.addressof(mod.lib, "ss_test_spin"), state, keep=mod)
+    rt.process(frames, t + int(2 * period_ns))
+    rt.process(frames, t + int(3 * period_ns), PA_OUTPUT_UNDERFLOW)
+
+    slow = rt.slow_callbacks()
+    long_ones = [c for c in slow if c.dur_ns > 5_000_000]
+    assert len(long_ones) >= 2
+    asleep, spun = long_ones[0], long_ones[-1]
+    assert asleep.cpu_ns is not None and asleep.cpu_ns < 0.5 * period_ns
+    assert spun.cpu_ns is not None and spun.cpu_ns >= 6_000_000
+    assert all(c.cpu_ns is None or c.cpu_ns <= c.dur_ns + 100_000 for c in slow)
+    xr = rt.xrun_times()
+    assert len(xr) == 2
+    assert xrun_causes(xr, [], slow, period_ns * 1e-9, window_s=0.02) == [
+        "preempted callback", "slow callback"]
+    assert set(xrun_causes(xr, [], slow, period_ns * 1e-9)) <= set(CAUSES)
 
 
 def test_runtime_logs_slow_callbacks():
@@ -109,8 +209,8 @@ def test_runtime_logs_slow_callbacks():
         rt.process(128, t + k * 26_667)
     slow = rt.slow_callbacks()
     assert 3 <= len(slow) <= 4           # (the empty one only if the machine stalled in it)
-    assert all(d > 0.5 * 128 / 4_800_000 * 1e9 for _, d in slow)
-    assert [a for a, _ in slow] == sorted(a for a, _ in slow)
+    assert all(c.dur_ns > 0.5 * 128 / 4_800_000 * 1e9 for c in slow)
+    assert [c.start_ns for c in slow] == sorted(c.start_ns for c in slow)
 
 
 def test_runtime_logs_xrun_times():
