@@ -18,7 +18,9 @@ import copy
 import json
 import math
 import os
+import re
 import tempfile
+import time
 from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
@@ -333,13 +335,46 @@ def save_preset(doc: Mapping | Preset, path: str | os.PathLike) -> Path:
     return atomic_write_text(path, dump_preset(raw))
 
 
+STALE_TEMP_S = 600.0
+"""A temp file of an atomic write untouched this long (s) belongs to a write that was killed."""
+
+
+def sweep_stale_temps(target: str | os.PathLike, older_than_s: float = STALE_TEMP_S) -> int:
+    """Remove what killed atomic writes of ``target`` left behind; returns how many.
+
+    Only files named exactly as :func:`atomic_write_text` names its temp
+    files for this target (hidden, ``.NAME.<random>.tmp``, same folder) and
+    not modified for ``older_than_s`` -- no running write keeps one that
+    long.  Nothing else is touched; a file that cannot be removed is left.
+    """
+    target = Path(target)
+    pattern = re.compile(re.escape("." + target.name + ".") + r"[A-Za-z0-9_]{6,16}\.tmp")
+    cutoff = time.time() - float(older_than_s)
+    removed = 0
+    try:
+        candidates = [e for e in os.scandir(target.parent) if pattern.fullmatch(e.name)]
+    except OSError:
+        return 0
+    for e in candidates:
+        try:
+            if e.is_file(follow_symlinks=False) and e.stat(follow_symlinks=False).st_mtime < cutoff:
+                os.unlink(e.path)
+                removed += 1
+        except OSError:
+            pass
+    return removed
+
+
 def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
     """Write ``text`` so readers see the old file or the new one, never a part.
 
-    Temp file in the same folder, fsync, rename, fsync of the folder.
+    Temp file in the same folder, fsync, rename, fsync of the folder.  Temp
+    files that earlier, killed writes of the same file left are swept first
+    (:func:`sweep_stale_temps`).
     """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
+    sweep_stale_temps(target)
     fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".tmp", dir=target.parent)
     try:
         os.chmod(tmp, _file_mode(target))

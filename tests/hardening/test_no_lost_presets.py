@@ -171,6 +171,42 @@ def test_kill_at_random_moments_while_saving_repeatedly(seeded_user_dir):
     assert len(seen) > 1, f"no save finished before any kill (versions seen: {seen})"
 
 
+def test_a_later_save_sweeps_the_temp_files_killed_saves_left(seeded_user_dir):
+    """Killed saves leave hidden temp files; the next save of that preset removes
+    the stale ones (untouched for engine.preset.STALE_TEMP_S) and nothing else."""
+    from engine.preset import STALE_TEMP_S, sweep_stale_temps
+    from host.bank import save_user_preset
+
+    d = seeded_user_dir
+    for _ in range(3):                                     # real leftovers, from real kills
+        proc = _child(d, "point:after-write")
+        proc.communicate(timeout=120)
+        assert proc.returncode == -signal.SIGKILL
+    left = sorted(p.name for p in d.glob(f".{NAME}.json.*.tmp"))
+    assert len(left) == 3, left
+    old = time.time() - STALE_TEMP_S - 60
+    for name in left[:2]:
+        os.utime(d / name, (old, old))
+    keep = {                                               # not ours, or not stale: kept
+        left[2]: None,
+        ".other.json.abcd1234.tmp": b"other preset's write",
+        f".{NAME}.json.notes": b"user's own hidden file",
+        f"{NAME}.json.abcd1234.tmp": b"not hidden",
+    }
+    for name, data in keep.items():
+        if data is not None:
+            (d / name).write_bytes(data)
+            os.utime(d / name, (old, old))
+    before = {p.name: p.read_bytes() for p in d.iterdir() if p.name in keep}
+    save_user_preset(_version(3), NAME)
+    after = {p.name for p in d.iterdir()}
+    assert not any(name in after for name in left[:2]), "stale temp files were not swept"
+    assert {p.name: p.read_bytes() for p in d.iterdir() if p.name in keep} == before
+    assert _check_whole(d, {3}) == 3
+    assert sweep_stale_temps(d / f"{NAME}.json", older_than_s=0.0) == 1    # the fresh one, when asked
+    assert sweep_stale_temps(d / "missing-folder" / "x.json") == 0
+
+
 # ---------------------------------------------------------------- corrupt user presets
 
 def _corrupt_files(d: Path) -> dict[str, bytes | None]:
