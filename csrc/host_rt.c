@@ -19,6 +19,9 @@
  * [0, frames): a constant latency of one block with the timing inside the
  * block kept.  Events stamped at or after T_k wait for the next block.
  */
+#if defined(__linux__) && !defined(_GNU_SOURCE)
+#define _GNU_SOURCE                /* getrusage(RUSAGE_THREAD) */
+#endif
 #ifndef _POSIX_C_SOURCE
 #define _POSIX_C_SOURCE 200809L
 #endif
@@ -26,6 +29,7 @@
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/resource.h>
 #include <time.h>
 
 #if defined(__SSE__) || defined(__x86_64__)
@@ -116,6 +120,29 @@ static int64_t ss_host_thread_cpu_ns_(void)
     struct timespec ts;
     if (clock_gettime(CLOCK_THREAD_CPUTIME_ID, &ts) != 0) return -1;
     return (int64_t)ts.tv_sec * 1000000000LL + (int64_t)ts.tv_nsec;
+}
+
+/* Voluntary and involuntary context switches of the calling thread so far
+ * (-1 where the system cannot tell per thread); a non-blocking system call. */
+static void ss_host_thread_switches_(long *voluntary, long *involuntary)
+{
+#if defined(RUSAGE_THREAD)
+    struct rusage ru;
+    if (getrusage(RUSAGE_THREAD, &ru) == 0) {
+        *voluntary = ru.ru_nvcsw;
+        *involuntary = ru.ru_nivcsw;
+        return;
+    }
+#endif
+    *voluntary = -1;
+    *involuntary = -1;
+}
+
+static int ss_host_bin_(int64_t dur, double period_ns)
+{
+    double bin = (double)dur / period_ns * (double)SS_HOST_HIST_BINS / (double)SS_HOST_HIST_SPAN;
+    int b = bin >= (double)(SS_HOST_HIST_BINS - 1) ? SS_HOST_HIST_BINS - 1 : (int)bin;
+    return b < 0 ? 0 : b;
 }
 
 ss_host *ss_host_create(double rate, int max_block, int channels,
@@ -363,6 +390,7 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
 {
     ss_host_counters *w;
     int64_t t0, cpu0;
+    long vol0, invol0;
     unsigned long pos;
     int n_ev, ei = 0, ch, channels;
     float ceiling, peak = 0.0f;
@@ -371,6 +399,7 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
     if (!h || !out) return paAbort;
     t0 = ss_host_now_ns();
     cpu0 = ss_host_thread_cpu_ns_();
+    ss_host_thread_switches_(&vol0, &invol0);
 #ifdef SS_HOST_HAVE_MXCSR
     _mm_setcsr(_mm_getcsr() | 0x8040);             /* flush-to-zero, denormals-are-zero */
 #endif
@@ -492,18 +521,22 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
 publish:
     {
         int64_t dur = ss_host_now_ns() - t0;
+        int64_t cpu1 = ss_host_thread_cpu_ns_();
+        int64_t cpu = (cpu0 >= 0 && cpu1 >= cpu0) ? cpu1 - cpu0 : -1;
+        long vol1, invol1;
         double period_ns = frames ? (double)frames * 1e9 / rate : 1.0;
-        double bin = (double)dur / period_ns * (double)SS_HOST_HIST_BINS / (double)SS_HOST_HIST_SPAN;
-        int b = bin >= (double)(SS_HOST_HIST_BINS - 1) ? SS_HOST_HIST_BINS - 1 : (int)bin;
-        if (b < 0) b = 0;
-        if (frames) w->hist[b]++;
+        ss_host_thread_switches_(&vol1, &invol1);
+        if (frames) {
+            w->hist[ss_host_bin_(dur, period_ns)]++;
+            w->cpu_hist[ss_host_bin_(cpu >= 0 ? cpu : dur, period_ns)]++;
+            if (vol0 >= 0 && vol1 > vol0) w->cb_blocked++;
+            if (invol0 >= 0 && invol1 > invol0) w->cb_preempted++;
+        }
+        if (cpu > 0 && (uint64_t)cpu > w->cb_cpu_worst_ns) w->cb_cpu_worst_ns = (uint64_t)cpu;
         if (frames && 2.0 * (double)dur > period_ns && h->slow_logged < SS_HOST_SLOW_LOG) {
             h->slow_start_ns[h->slow_logged] = t0;
             h->slow_dur_ns[h->slow_logged] = dur;
-            {
-                int64_t cpu1 = ss_host_thread_cpu_ns_();
-                h->slow_cpu_ns[h->slow_logged] = (cpu0 >= 0 && cpu1 >= cpu0) ? cpu1 - cpu0 : -1;
-            }
+            h->slow_cpu_ns[h->slow_logged] = cpu;
             __atomic_store_n(&h->slow_logged, h->slow_logged + 1, __ATOMIC_RELEASE);
         }
         w->cb_last_ns = (uint64_t)dur;

@@ -77,6 +77,13 @@ typedef struct ss_host_counters {
     uint64_t cb_last_ns;         /* duration of the last callback, ns */
     uint64_t cb_worst_ns;        /* worst callback duration, ns */
     uint64_t hist[SS_HOST_HIST_BINS]; /* callback time / block period, bins of SPAN/BINS */
+    uint64_t cpu_hist[SS_HOST_HIST_BINS]; /* the same for the time the audio thread spent on
+                                    its CPU in the callback (CLOCK_THREAD_CPUTIME_ID) */
+    uint64_t cb_cpu_worst_ns;    /* worst on-CPU time of a callback, ns */
+    uint64_t cb_blocked;         /* callbacks in which the audio thread blocked (gave up its
+                                    CPU: a voluntary context switch); must stay 0 */
+    uint64_t cb_preempted;       /* callbacks in which the system switched the audio thread
+                                    out for another thread (an involuntary switch) */
     uint32_t fading_active;      /* 1 while a previous kernel is fading out */
     uint32_t last_frames;        /* frames in the last callback */
     float peak;                  /* peak |out| of the last callback */

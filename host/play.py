@@ -788,6 +788,7 @@ class LiveHost:
             tr_received += slot.translator.counters.received
             tr_ignored += slot.translator.counters.ignored
         p999 = c.load_percentile(99.9)
+        cpu_p999 = c.load_percentile(99.9, on_cpu=True)
         rep = {
             "format": "sheafsynth-play-report", "version": 1,
             "preset": self.opts.preset, "final_program": self.slot.name,
@@ -797,6 +798,10 @@ class LiveHost:
             "xruns": int(c.xruns), "underflows": int(c.underflows), "overflows": int(c.overflows),
             "load_worst": c.cb_worst_ns / period_ns,
             "load_p999": p999 if math.isfinite(p999) else None,
+            "load_cpu_worst": c.cb_cpu_worst_ns / period_ns,
+            "load_cpu_p999": cpu_p999 if math.isfinite(cpu_p999) else None,
+            "callbacks_blocked": int(c.cb_blocked),
+            "callbacks_preempted": int(c.cb_preempted),
             "midi": {"port": (self.midi.virtual or self.midi.port_name) if self.midi else None,
                      "received": self.midi_received, "malformed": self.midi_malformed,
                      "ignored": tr_ignored, "translated": tr_received, "errors": self.midi_errors,

@@ -117,7 +117,11 @@ class HostCounters:
     """A consistent snapshot of the runtime's counters.
 
     Times in ns; ``hist`` counts callbacks by duration / block period in
-    bins of ``hist_bin_width`` periods (the last bin also holds longer ones).
+    bins of ``hist_bin_width`` periods (the last bin also holds longer ones);
+    ``cpu_hist`` the same for the time the audio thread was on its CPU in
+    each callback.  ``cb_blocked`` counts callbacks in which the audio thread
+    blocked (gave up its CPU: it must stay 0); ``cb_preempted`` those in
+    which the system switched it out for another thread.
     """
 
     callbacks: int
@@ -142,26 +146,32 @@ class HostCounters:
     last_start_ns: int
     cb_last_ns: int
     cb_worst_ns: int
+    cb_cpu_worst_ns: int
+    cb_blocked: int
+    cb_preempted: int
     fading_active: bool
     last_frames: int
     peak: float
     peak_hold: float
     hist: tuple
     hist_bin_width: float
+    cpu_hist: tuple = ()
 
     @property
     def xruns(self) -> int:
         """Output underflows plus overflows reported by the device."""
         return self.underflows + self.overflows
 
-    def load_percentile(self, q: float = 99.9) -> float:
+    def load_percentile(self, q: float = 99.9, *, on_cpu: bool = False) -> float:
         """Callback time at percentile ``q`` as a fraction of the block period.
 
-        Upper edge of the histogram bin; NaN before the first callback.
+        Wall-clock time, or with ``on_cpu`` the time the audio thread spent
+        on its CPU.  Upper edge of the histogram bin; NaN before the first
+        callback.
         """
         if not 0.0 <= q <= 100.0:
             raise ValueError(f"percentile q={q} must be within 0..100")
-        counts = np.asarray(self.hist, dtype=np.float64)
+        counts = np.asarray(self.cpu_hist if on_cpu else self.hist, dtype=np.float64)
         total = counts.sum()
         if total == 0:
             return float("nan")
@@ -171,7 +181,7 @@ class HostCounters:
 
 
 _COUNTER_FIELDS = [f.name for f in dataclasses.fields(HostCounters)
-                   if f.name not in ("hist", "hist_bin_width")]
+                   if f.name not in ("hist", "hist_bin_width", "cpu_hist")]
 
 
 def _address(ffi, obj: Any) -> int:
@@ -340,7 +350,8 @@ class HostRuntime:
         c = self._snap
         values = {name: getattr(c, name) for name in _COUNTER_FIELDS}
         values["fading_active"] = bool(values["fading_active"])
-        return HostCounters(hist=tuple(c.hist), hist_bin_width=self._bin_width, **values)
+        return HostCounters(hist=tuple(c.hist), hist_bin_width=self._bin_width, cpu_hist=tuple(c.cpu_hist),
+                            **values)
 
     def xrun_times(self) -> list[int]:
         """CLOCK_MONOTONIC start times (ns) of the callbacks flagged with an xrun (the first 1024)."""

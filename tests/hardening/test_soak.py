@@ -124,6 +124,8 @@ def test_soak_300_events_per_second(live, tmp_path):
         "clipped_samples": rep["clipped_samples"], "peak": peak, "ceiling": LIMITER_CEILING,
         "voices_stolen": rep["voices_stolen"], "guard_resets": rep["guard_resets"],
         "events_dropped": rep["events"]["dropped"], "rss_start_kib": after[0] if after else None,
+        "load_cpu_p999": rep.get("load_cpu_p999"), "load_cpu_worst": rep.get("load_cpu_worst"),
+        "callbacks_blocked": rep.get("callbacks_blocked"), "callbacks_preempted": rep.get("callbacks_preempted"),
         "xruns_host": host_xruns(rep), "shallow_idle": rep.get("shallow_idle"),
         "xruns_machine_stall": rep.get("machine", {}).get("xruns_explained"),
         "xruns_preempted": rep.get("machine", {}).get("xruns_preempted"),

@@ -183,6 +183,10 @@ def test_callbacks_held_off_the_cpu_are_told_from_slow_ones():
     assert asleep.cpu_ns is not None and asleep.cpu_ns < 0.5 * period_ns
     assert spun.cpu_ns is not None and spun.cpu_ns >= 6_000_000
     assert all(c.cpu_ns is None or c.cpu_ns <= c.dur_ns + 100_000 for c in slow)
+    c = rt.counters()
+    # getrusage(2) RUSAGE_THREAD: a sleep is a voluntary context switch, a spin is none
+    assert c.cb_blocked >= 2 and c.cb_blocked <= c.callbacks - 1
+    assert c.cb_cpu_worst_ns >= 6_000_000 and sum(c.cpu_hist) == sum(c.hist) == c.callbacks
     xr = rt.xrun_times()
     assert len(xr) == 2
     assert xrun_causes(xr, [], slow, period_ns * 1e-9, window_s=0.02) == [
