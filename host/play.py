@@ -651,7 +651,7 @@ class LiveHost:
         if o.report is not None:
             _atomic_write_text(Path(o.report), json.dumps(report, indent=1) + "\n")
         self._print_messages(None)
-        print(f"stopped after {elapsed:.1f} s: {report['callbacks']} callbacks, {report['xruns']} xruns, "
+        print(f"stopped after {elapsed:.1f} s: {report['callbacks']} callbacks, {_xrun_summary(report)}, "
               f"worst callback {100 * report['load_worst']:.0f}% of the block period, "
               f"MIDI {report['midi']['received']} received"
               + (f", recorded {frames_recorded} frames to {o.record}" if o.record else ""),
@@ -868,6 +868,19 @@ class LiveHost:
     def _all_slots(self) -> list[_Slot]:
         """Every slot once (the start preset may be outside the bank)."""
         return list({id(s): s for s in self.slots + [self.slot] if s is not None}.values())
+
+
+def _xrun_summary(report: dict) -> str:
+    """"N xruns", with their causes when the stall probe ran, and a blocked-callback warning."""
+    n = int(report["xruns"])
+    text = f"{n} xruns"
+    m = report.get("machine")
+    if m and n:
+        text += (f" ({m['xruns_explained'] + m['xruns_preempted']} the machine's, "
+                 f"{m['xruns_slow_callback']} after slow callbacks, {m['xruns_elsewhere']} elsewhere)")
+    if report.get("callbacks_blocked"):
+        text += f", the audio thread BLOCKED in {report['callbacks_blocked']} callbacks (a host bug: please report it)"
+    return text
 
 
 # ---------------------------------------------------------------- CLI

@@ -287,3 +287,13 @@ def test_jitter_verdicts():
     bad = dict(base, stalls=5, stalls_per_minute=30.0, skipped=4, worst_late_s=0.012)
     assert _verdict(bad).startswith("unfit") and "24 block deadlines a minute" in _verdict(bad)
     assert "real-time priority" in _verdict(dict(base, realtime=False))
+
+
+def test_play_stop_line_names_the_xrun_causes():
+    from host.play import _xrun_summary
+
+    assert _xrun_summary({"xruns": 0, "callbacks_blocked": 0}) == "0 xruns"
+    machine = {"xruns_explained": 3, "xruns_preempted": 1, "xruns_slow_callback": 0, "xruns_elsewhere": 1}
+    assert _xrun_summary({"xruns": 5, "machine": machine, "callbacks_blocked": 0}) == (
+        "5 xruns (4 the machine's, 0 after slow callbacks, 1 elsewhere)")
+    assert "BLOCKED in 2 callbacks" in _xrun_summary({"xruns": 1, "callbacks_blocked": 2})
