@@ -155,7 +155,7 @@ class HostCounters:
     peak_hold: float
     hist: tuple
     hist_bin_width: float
-    cpu_hist: tuple = ()
+    cpu_hist: tuple
 
     @property
     def xruns(self) -> int:

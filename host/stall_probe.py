@@ -250,7 +250,8 @@ def xrun_causes(xrun_ns: Sequence[int], stalls: Iterable[Stall], slow: Sequence[
     """
     gaps = explain_xruns(xrun_ns, stalls, window_s=window_s)
     limit = slow_fraction * period_s * 1e9
-    long_ones = sorted((int(c[0]), c[2] if len(c) > 2 else None) for c in slow if c[1] > limit)
+    long_ones = sorted(((int(c[0]), c[2] if len(c) > 2 else None) for c in slow if c[1] > limit),
+                       key=lambda sc: sc[0])
     starts = [a for a, _ in long_ones]
     w = int(window_s * 1e9)
     out = []

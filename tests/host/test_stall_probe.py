@@ -115,6 +115,9 @@ def test_xrun_causes_tell_a_preempted_callback_from_a_slow_one():
             (int(510.0e6), int(1.9e6), int(1.6e6))]   # ... a slow one in the same window: ours
     xr = [int(x * 1e6) for x in (104.0, 305.0, 515.0)]
     assert xrun_causes(xr, [], slow, period) == ["preempted callback", "slow callback", "slow callback"]
+    # two logged callbacks may share a start time, one with its CPU time unknown
+    twins = [(int(100.0e6), int(1.8e6), None), (int(100.0e6), int(1.9e6), int(0.2e6))]
+    assert xrun_causes([int(104.0e6)], [], twins, period) == ["slow callback"]
     assert set(xrun_causes(xr, [], slow, period)) <= set(CAUSES)
 
 
