@@ -19,12 +19,12 @@ from typing import Iterable
 
 import numpy as np
 
-from .build import CompiledModule, compile_module
-from .codegen import CDEF, generate
-from .errors import PresetError, SheafsynthError
-from .lower import ParamInfo, StepProgram, lower
-from .preset import Preset, load_preset
-from . import voicing as V
+from sheafsynth.engine.backends.c.build import CompiledModule, compile_module
+from sheafsynth.engine.backends.c.emit import CDEF, generate
+from sheafsynth.engine.errors import PresetError, SheafsynthError
+from sheafsynth.engine.ir.lower import ParamInfo, StepProgram, lower
+from sheafsynth.engine.preset.document import Preset, load_preset
+from sheafsynth.engine.ir import voicing as V
 
 EVENT_CAPACITY = 4096
 RATES = (22050, 32000, 44100, 48000, 88200, 96000, 192000)
@@ -46,7 +46,7 @@ class Instrument:
                  polyphony: int | None = None, limiter: bool = True, strict: bool = False,
                  min_ramp_s: dict[str, float] | None = None):
         """``min_ramp_s``: per-parameter ramp times (s) a stability certificate
-        requires; the host passes engine.analysis.ramp_limits(preset) here."""
+        requires; the host passes engine.analysis.report.ramp_limits(preset) here."""
         self.preset: Preset = load_preset(preset)
         self._min_ramp_s = dict(min_ramp_s or {})
         self._seed = int(seed) & 0xFFFFFFFF
@@ -141,7 +141,7 @@ class Instrument:
         self._events.append((int(offset), typ, int(a), int(b), float(value)))
 
     def push_event(self, offset: int, typ: int, a: int = 0, b: int = 0, value: float = 0.0) -> None:
-        """Queue a raw kernel event (types in engine.voicing / csrc/ss_abi.h)."""
+        """Queue a raw kernel event (types in engine.ir.voicing / csrc/ss_abi.h)."""
         self._push(offset, typ, a, b, value)
 
     def note_on(self, note: int, velocity: int = 100, offset: int = 0) -> None:

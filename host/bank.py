@@ -16,8 +16,9 @@ from pathlib import Path
 
 import platformdirs
 
-from engine.errors import PresetError
-from engine.preset import FACTORY_DIR, Preset, load_preset, save_preset
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.locations import FACTORY_DIR
+from sheafsynth.engine.preset.document import Preset, load_preset, save_preset
 
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9 _\-]{0,63}$")
 

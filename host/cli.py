@@ -15,7 +15,7 @@ import os
 import sys
 from pathlib import Path
 
-from engine.errors import AudioError, BuildError, InputError, PresetError, SheafsynthError
+from sheafsynth.engine.errors import AudioError, BuildError, InputError, PresetError, SheafsynthError
 
 CAUTION = ("Caution: physical models can ring, self-oscillate or build up at frequencies the ear "
            "barely hears. Keep the limiter on, start at low volume, protect hearing and speakers.")
@@ -37,7 +37,7 @@ def _parse_set(items: list[str]) -> dict[str, float]:
 
 
 def _load(preset_arg: str, sets: list[str] | None = None):
-    from . import bank
+    from sheafsynth.host import bank
 
     preset = bank.load(preset_arg)
     values = _parse_set(sets)
@@ -52,8 +52,8 @@ def _instrument(args, preset, knobs_move: bool = True):
     ``knobs_move=False`` (a take with no controller messages, like the demo
     phrase) needs no ramp limits: no parameter moves while a note sounds.
     """
-    from engine.analysis import ramp_limits
-    from engine.instrument import Instrument
+    from sheafsynth.engine.analysis.report import ramp_limits
+    from sheafsynth.engine.instrument import Instrument
 
     if getattr(args, "no_limiter", False):
         print("warning: the output limiter is OFF. " + CAUTION, file=sys.stderr)
@@ -64,7 +64,7 @@ def _instrument(args, preset, knobs_move: bool = True):
 
 def _guard(args, preset) -> None:
     """Refuse presets that are not frozen-stable unless --allow-unstable; print warnings."""
-    from engine.analysis import guard
+    from sheafsynth.engine.analysis.report import guard
 
     for line in guard(preset, allow_unstable=getattr(args, "allow_unstable", False)):
         print(f"warning: {line}", file=sys.stderr)
@@ -90,7 +90,7 @@ def _add_render(p: argparse.ArgumentParser) -> None:
 
 
 def _run_render(args) -> int:
-    from .render import render_midi, render_note, write_wav, _peak_dbfs
+    from sheafsynth.host.offline.render import render_midi, render_note, write_wav, _peak_dbfs
 
     preset = _load(args.preset, args.set)
     _guard(args, preset)
@@ -128,7 +128,7 @@ def _add_inspect(p: argparse.ArgumentParser) -> None:
 
 
 def _run_inspect(args) -> int:
-    from .describe import describe
+    from sheafsynth.host.commands.inspect import describe
 
     print(describe(_load(args.preset), float(args.rate)))
     return 0
@@ -141,7 +141,7 @@ def _add_presets(p: argparse.ArgumentParser) -> None:
 
 
 def _run_presets(args) -> int:
-    from . import bank
+    from sheafsynth.host import bank
 
     items = bank.entries()
     if args.json:
@@ -167,9 +167,9 @@ def _add_demo(p: argparse.ArgumentParser) -> None:
 def _run_demo(args) -> int:
     import mido
 
-    from engine.preset import factory_presets, load_preset
+    from sheafsynth.engine.preset.document import factory_presets, load_preset
 
-    from .render import DEMO_PHRASE, _peak_dbfs, render_midi, write_wav
+    from sheafsynth.host.offline.render import DEMO_PHRASE, _peak_dbfs, render_midi, write_wav
 
     out_dir = Path(args.out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -219,11 +219,12 @@ COMMANDS: list[tuple[str, str, object, object]] = [
 
 def _register_optional() -> None:
     """Subcommands that live in their own modules (added when present)."""
-    for modname in ("host.play", "host.check_cmd", "host.bench", "host.jitter_cmd"):
+    for modname in ("sheafsynth.host.live.play", "sheafsynth.host.commands.check", "sheafsynth.host.bench.run",
+                    "sheafsynth.host.commands.jitter"):
         try:
             mod = __import__(modname, fromlist=["COMMAND"])
         except ImportError as e:
-            if e.name and e.name.startswith("host."):
+            if e.name and e.name.startswith("sheafsynth.host."):
                 continue
             raise
         for cmd in getattr(mod, "COMMANDS", []):
@@ -237,7 +238,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="sheafsynth",
         description="Physical-model instruments as sheaf filter networks: check, compile, play, render.",
         epilog=CAUTION)
-    from engine import __version__
+    from sheafsynth.engine import __version__
 
     parser.add_argument("--version", action="version", version=f"sheafsynth {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")

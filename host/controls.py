@@ -17,9 +17,9 @@ import math
 from dataclasses import dataclass, field
 from typing import Callable
 
-from engine import voicing as V
-from engine.errors import PresetError
-from engine.preset import ControlSpec, Preset
+from sheafsynth.engine.ir import voicing as V
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.preset.document import ControlSpec, Preset
 
 CURVES: dict[str, Callable[[float, float, float], float]] = {
     "linear": lambda x, lo, hi: lo + (hi - lo) * x,

@@ -75,7 +75,7 @@ def jack_server(tmp_path_factory):
             time.sleep(0.2)
     if "sounddevice" in sys.modules:
         # PortAudio lists a JACK server only if it was up when PortAudio started.
-        from host.audio import rescan_devices
+        from sheafsynth.host.live.audio import rescan_devices
         rescan_devices()
     yield 48000
     if proc is not None:
@@ -95,7 +95,7 @@ def jack_server(tmp_path_factory):
 @pytest.fixture
 def jack_device(jack_server):
     """The JACK output device as PortAudio lists it (an AudioDevice)."""
-    from host.audio import list_audio_devices
+    from sheafsynth.host.live.audio import list_audio_devices
     devs = [d for d in list_audio_devices() if "JACK" in d.hostapi]
     if not devs:
         pytest.fail("JACK server is running but PortAudio lists no JACK output device; "
@@ -111,7 +111,7 @@ machine caused, and shallow idle keeps the CPUs quick to wake (both cost next to
 def host_xruns(rep: dict) -> int | None:
     """Xruns that are the host's own: after a callback of ours that took most of the
     period, and spent it on its CPU, with no machine stall to explain it
-    (host.stall_probe.xrun_causes).
+    (host.live.stall_probe.xrun_causes).
     None without a real-time probe."""
     m = rep.get("machine")
     if not m or not m.get("probe", {}).get("realtime"):

@@ -30,7 +30,7 @@ class PlayProcess:
                  record: bool = True, virtual: str | None = "sshard-in"):
         self.report_path = tmp / "report.json"
         self.wav_path = tmp / "out.wav" if record else None
-        cmd = [sys.executable, "-m", "host.cli", "play", preset, "--device", "JACK",
+        cmd = [sys.executable, "-m", "sheafsynth.host.cli", "play", preset, "--device", "JACK",
                "--rate", str(LIVE_RATE), "--buffer", str(LIVE_BLOCK), "--seconds", str(seconds),
                "--report", str(self.report_path), *LIVE_PLAY_FLAGS, *extra]
         if virtual:

@@ -9,12 +9,13 @@ import jsonschema
 import numpy as np
 import pytest
 
-from engine.analysis import UnstableError, check, guard, ramp_limits
-from engine.instrument import Instrument
-from engine.preset import FACTORY_DIR, factory_presets, load_preset
+from sheafsynth.engine.analysis.report import UnstableError, check, guard, ramp_limits
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.locations import ENGINE_DIR, FACTORY_DIR
+from sheafsynth.engine.preset.document import factory_presets, load_preset
 from tests.measure import cents, decay_t60, fundamental
 
-SCHEMA = json.loads((FACTORY_DIR.parent / "engine" / "schema" / "check-report.json").read_text())
+SCHEMA = json.loads((ENGINE_DIR / "analysis" / "schema" / "check-report.json").read_text())
 
 
 def loop_preset(gain_max: float, n: int = 40) -> dict:
@@ -156,7 +157,7 @@ def test_drift_mode_is_named():
 
 
 def test_check_cli_exit_codes(tmp_path, capsys):
-    from host.cli import main
+    from sheafsynth.host.cli import main
 
     f = tmp_path / "bad.json"
     f.write_text(json.dumps(loop_preset(1.05)))

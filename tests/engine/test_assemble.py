@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from engine.assemble import assemble, impulse_response
-from engine.instrument import Instrument
-from engine.preset import factory_presets
+from sheafsynth.engine.analysis.assemble import assemble, impulse_response
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.preset.document import factory_presets
 
 
 def _string_presets():

@@ -1,4 +1,4 @@
-"""Tests for engine.build: cffi compile with a content-addressed cache."""
+"""Tests for engine.backends.c.build: cffi compile with a content-addressed cache."""
 
 import multiprocessing
 import os
@@ -10,8 +10,8 @@ from pathlib import Path
 
 import pytest
 
-from engine import build
-from engine.errors import BuildError, SheafsynthError
+from sheafsynth.engine.backends.c import build
+from sheafsynth.engine.errors import BuildError, SheafsynthError
 
 CDEF = "int ss_test_add(int a, int b);"
 REPO = Path(__file__).resolve().parents[2]
@@ -31,7 +31,7 @@ def cache(tmp_path, monkeypatch):
 
 def _run_in_fresh_process(cache_dir: Path, source: str) -> str:
     code = textwrap.dedent(f"""
-        from engine import build
+        from sheafsynth.engine.backends.c import build
         m = build.compile_module({CDEF!r}, {source!r}, tag="t")
         print(m.lib.ss_test_add(40, 2), m.cached, build.compile_count(), m.path)
     """)
@@ -134,7 +134,7 @@ def test_damaged_cache_entry_is_rebuilt(cache):
 
 def _concurrent_worker(cache_dir, source, barrier, queue):
     os.environ["SHEAFSYNTH_CACHE_DIR"] = cache_dir
-    from engine import build as b
+    from sheafsynth.engine.backends.c import build as b
     barrier.wait(timeout=60)
     try:
         m = b.compile_module(CDEF, source, tag="t")

@@ -5,12 +5,12 @@ from __future__ import annotations
 import copy
 import re
 
-from engine import build
-from engine.codegen import generate, num
-from engine.errors import BuildError
-from engine.instrument import Instrument
-from engine.lower import lower
-from engine.preset import load_preset
+from sheafsynth.engine.backends.c import build
+from sheafsynth.engine.backends.c.emit import generate, num
+from sheafsynth.engine.errors import BuildError
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.preset.document import load_preset
 
 HOSTILE = [
     '*/ #include <stdlib.h>\nint main(){system("rm -rf /");} /*',

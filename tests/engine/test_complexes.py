@@ -8,13 +8,13 @@ import pytest
 import scipy.linalg as sla
 import scipy.sparse.linalg as spla
 
-from engine.complexes import (
+from sheafsynth.engine.model.complexes import (
     FieldSheaf, check_consistency, complex_from_spec, diffusion_stable,
     diffusion_step, field_sheaf_from_cell, gershgorin_bound, leapfrog_step,
     lowest_eigenvalues, mode_frequency, mode_response, operator_mu_max,
     position_weights, stable,
 )
-from engine.errors import PresetError
+from sheafsynth.engine.errors import PresetError
 
 
 def sheaf(spec, stalk=1, twist=None):

@@ -5,7 +5,6 @@ External checks name their source beside the assertion.
 
 from __future__ import annotations
 
-import copy
 import json
 import math
 import re
@@ -14,17 +13,17 @@ import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
 
-from engine import voicing as V
-from engine.assemble import assemble
-from engine.cells.field import FieldModel
-from engine.codegen import generate
-from engine.complexes import complex_from_spec, FieldSheaf
-from engine.errors import PresetError
-from engine.fieldprog import stencil_operators
-from engine.instrument import Instrument
-from engine.lower import lower, note_hz
-from engine.preset import FACTORY_DIR, load_preset
-from engine.reference import ReferenceStepper
+from sheafsynth.engine.ir import voicing as V
+from sheafsynth.engine.analysis.assemble import assemble
+from sheafsynth.engine.model.cells.field import FieldModel
+from sheafsynth.engine.backends.c.emit import generate
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.ir.fields import stencil_operators
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.ir.lower import lower, note_hz
+from sheafsynth.engine.locations import FACTORY_DIR
+from sheafsynth.engine.preset.document import load_preset
+from sheafsynth.engine.backends.reference.stepper import ReferenceStepper
 from tests.measure import cents, decay_t60, fundamental
 
 FS = 48000

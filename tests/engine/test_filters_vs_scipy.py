@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from engine.instrument import Instrument
+from sheafsynth.engine.instrument import Instrument
 
 N = 400
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from engine.instrument import Instrument
+from sheafsynth.engine.instrument import Instrument
 
 IMPULSE_THRU = {
     "format": "sheafsynth-preset", "version": 1, "name": "offset-probe", "polyphony": 2,

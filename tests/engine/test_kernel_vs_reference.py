@@ -10,10 +10,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from engine.instrument import Instrument
-from engine.preset import factory_presets, load_preset
-from engine.reference import ReferenceStepper
-from engine import voicing as V
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.preset.document import factory_presets, load_preset
+from sheafsynth.engine.backends.reference.stepper import ReferenceStepper
+from sheafsynth.engine.ir import voicing as V
 
 BLOCK = 256
 

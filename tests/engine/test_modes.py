@@ -1,4 +1,4 @@
-"""Tests for engine.modes: partial frequencies, T60, tuning, drift, plot."""
+"""Tests for engine.analysis.modes: partial frequencies, T60, tuning, drift, plot."""
 
 import builtins
 import math
@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from engine.errors import SheafsynthError
-from engine.modes import (
+from sheafsynth.engine.errors import SheafsynthError
+from sheafsynth.engine.analysis.modes import (
     PlotUnavailable,
     all_poles,
     drift_modes,
@@ -17,7 +17,7 @@ from engine.modes import (
     plot_report,
     t60_from_radius,
 )
-from engine.stability import AnalysisError
+from sheafsynth.engine.analysis.stability import AnalysisError
 
 FS = 48000.0
 

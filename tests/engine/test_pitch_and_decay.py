@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from engine.instrument import Instrument
-from engine.preset import FACTORY_DIR
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.locations import FACTORY_DIR
 from tests.measure import cents, decay_t60, fundamental
 
 FS = 48000
@@ -85,7 +85,7 @@ def test_exact_allpass_formula_gives_its_phase_delay():
     """a = sin(w(1-tau)/2) / sin(w(1+tau)/2) has phase delay tau at w (first-order allpass; exact)."""
     from scipy import signal
 
-    from engine.tuning import allpass_coef
+    from sheafsynth.engine.ir.tuning import allpass_coef
 
     for tau in (0.5, 0.9, 1.4):
         for w in (0.01, 0.3, 1.0):

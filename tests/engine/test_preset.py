@@ -8,9 +8,9 @@ import os
 
 import pytest
 
-from engine.cells import CELL_KINDS
-from engine.errors import PresetError
-from engine.preset import SCHEMA_PATH, factory_presets, load_preset, save_preset
+from sheafsynth.engine.model.cells import CELL_KINDS
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.preset.document import SCHEMA_PATH, factory_presets, load_preset, save_preset
 
 BASE = {
     "format": "sheafsynth-preset", "version": 1, "name": "test-string",

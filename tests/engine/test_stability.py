@@ -1,4 +1,4 @@
-"""Tests for engine.stability: frozen stability, certificates, lattices."""
+"""Tests for engine.analysis.stability: frozen stability, certificates, lattices."""
 
 import math
 
@@ -9,9 +9,9 @@ import scipy.sparse as sp
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from engine import stability as S
-from engine.errors import SheafsynthError
-from engine.stability import (
+from sheafsynth.engine.analysis import stability as S
+from sheafsynth.engine.errors import SheafsynthError
+from sheafsynth.engine.analysis.stability import (
     AffineMatrix,
     AnalysisError,
     CellGain,

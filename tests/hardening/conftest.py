@@ -116,7 +116,7 @@ def _check_preset_error(exc, doc=None, sources: tuple[str, ...] = ()) -> None:
     The path is "(top level)", one of ``sources`` (a file name or "<text>"),
     or a JSON path whose every step but the last exists in ``doc``.
     """
-    from engine.errors import PresetError
+    from sheafsynth.engine.errors import PresetError
 
     assert isinstance(exc, PresetError), f"{type(exc).__name__} escaped: {exc}"
     path = exc.path

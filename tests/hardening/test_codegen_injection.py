@@ -22,11 +22,11 @@ import subprocess
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from engine import build
-from engine.codegen import generate
-from engine.instrument import Instrument
-from engine.lower import lower
-from engine.preset import load_preset
+from sheafsynth.engine.backends.c import build
+from sheafsynth.engine.backends.c.emit import generate
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.preset.document import load_preset
 
 FRAGMENTS = [
     # C

@@ -26,9 +26,9 @@ import time
 import numpy as np
 import pytest
 
-from engine.errors import AudioError
-from engine.instrument import Instrument
-from engine.lower import GUARD_LIMIT, LIMITER_CEILING
+from sheafsynth.engine.errors import AudioError
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.ir.lower import GUARD_LIMIT, LIMITER_CEILING
 from tests.live import REPO
 
 RATE = 48000
@@ -92,7 +92,7 @@ def test_without_the_limiter_the_guard_alone_bounds_the_output():
 def _cli(*args, env=None, timeout=600):
     full = dict(os.environ, JACK_NO_START_SERVER="1")
     full.update(env or {})
-    return subprocess.run([sys.executable, "-m", "host.cli", *args], cwd=REPO, env=full, capture_output=True,
+    return subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", *args], cwd=REPO, env=full, capture_output=True,
                           text=True, timeout=timeout, stdin=subprocess.DEVNULL)
 
 
@@ -110,7 +110,7 @@ def test_render_with_allow_unstable_is_guarded(tmp_path):
 
 
 def test_audio_device_that_does_not_exist_raises_audio_error():
-    from host.audio import AudioOutput
+    from sheafsynth.host.live.audio import AudioOutput
 
     out = AudioOutput(device="no-such-device-sshard", rate=48000, blocksize=128)
     with pytest.raises(AudioError) as info:

@@ -22,11 +22,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from engine import voicing as V
-from engine.instrument import Instrument
-from engine.lower import LIMITER_CEILING
-from host.controls import MidiTranslator
-from host.midi import parse
+from sheafsynth.engine.ir import voicing as V
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.ir.lower import LIMITER_CEILING
+from sheafsynth.host.controls import MidiTranslator
+from sheafsynth.host.live.midi import parse
 
 # ---------------------------------------------------------------- the spec as an oracle
 

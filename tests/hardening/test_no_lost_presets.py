@@ -35,7 +35,7 @@ import copy, json, os, signal, sys, tempfile
 user_dir, mode = sys.argv[1], sys.argv[2]
 os.environ["SHEAFSYNTH_USER_DIR"] = user_dir
 sys.path.insert(0, sys.argv[3])
-from host.bank import save_user_preset
+from sheafsynth.host.bank import save_user_preset
 BASE = json.loads(sys.argv[4])
 
 def version(k):
@@ -85,7 +85,7 @@ if mode.startswith("point:"):
     save_user_preset(version(2), "@NAME@")
     print("finished", flush=True)
 else:
-    from engine.preset import load_preset
+    from sheafsynth.engine.preset.document import load_preset
     load_preset(version(0))            # warm up: the first validation builds the schema validator
     print("ready", flush=True)
     k = 2
@@ -119,8 +119,8 @@ def _child(user_dir: Path, mode: str) -> subprocess.Popen:
 
 def _check_whole(user_dir: Path, allowed: set[int] | None) -> int:
     """The preset file is one complete version (returns its number); the bank lists it cleanly."""
-    from engine.preset import load_preset
-    from host import bank
+    from sheafsynth.engine.preset.document import load_preset
+    from sheafsynth.host import bank
 
     path = user_dir / f"{NAME}.json"
     assert path.exists(), "the preset file is gone"
@@ -138,7 +138,7 @@ def _check_whole(user_dir: Path, allowed: set[int] | None) -> int:
 
 @pytest.fixture
 def seeded_user_dir(user_dir):
-    from host.bank import save_user_preset
+    from sheafsynth.host.bank import save_user_preset
 
     save_user_preset(_version(1), NAME)
     return user_dir
@@ -173,9 +173,9 @@ def test_kill_at_random_moments_while_saving_repeatedly(seeded_user_dir):
 
 def test_a_later_save_sweeps_the_temp_files_killed_saves_left(seeded_user_dir):
     """Killed saves leave hidden temp files; the next save of that preset removes
-    the stale ones (untouched for engine.preset.STALE_TEMP_S) and nothing else."""
-    from engine.preset import STALE_TEMP_S, sweep_stale_temps
-    from host.bank import save_user_preset
+    the stale ones (untouched for engine.preset.document.STALE_TEMP_S) and nothing else."""
+    from sheafsynth.engine.preset.document import STALE_TEMP_S, sweep_stale_temps
+    from sheafsynth.host.bank import save_user_preset
 
     d = seeded_user_dir
     for _ in range(3):                                     # real leftovers, from real kills
@@ -242,7 +242,7 @@ def _snapshot(d: Path) -> dict[str, tuple]:
 
 
 def test_corrupt_user_presets_are_reported_by_name_and_kept(user_dir):
-    from host import bank
+    from sheafsynth.host import bank
 
     files = _corrupt_files(user_dir)
     before = _snapshot(user_dir)
@@ -261,21 +261,21 @@ def test_presets_command_lists_broken_files_and_exits_0(user_dir):
     files = _corrupt_files(user_dir)
     before = _snapshot(user_dir)
     env = dict(os.environ, SHEAFSYNTH_USER_DIR=str(user_dir))
-    r = subprocess.run([sys.executable, "-m", "host.cli", "presets", "--json"], cwd=REPO, env=env,
+    r = subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", "presets", "--json"], cwd=REPO, env=env,
                        capture_output=True, text=True, timeout=120, stdin=subprocess.DEVNULL)
     assert r.returncode == 0, r.stderr
     assert "Traceback" not in r.stderr
     listed = {e["name"]: e for e in json.loads(r.stdout) if e["origin"] == "user"}
     assert set(listed) == set(files)
     assert all(listed[n]["error"] for n in files if n != "good-one")
-    r = subprocess.run([sys.executable, "-m", "host.cli", "presets"], cwd=REPO, env=env,
+    r = subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", "presets"], cwd=REPO, env=env,
                        capture_output=True, text=True, timeout=120, stdin=subprocess.DEVNULL)
     assert r.returncode == 0 and "Traceback" not in r.stderr
     for name in files:
         line = next(ln for ln in r.stdout.splitlines() if f" {name} " in ln)
         assert ("unusable:" in line) == (name != "good-one"), line
     for name in ("cut-short", "too-deep", "a-folder"):
-        r = subprocess.run([sys.executable, "-m", "host.cli", "render", name, "--out", os.devnull], cwd=REPO,
+        r = subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", "render", name, "--out", os.devnull], cwd=REPO,
                            env=env, capture_output=True, text=True, timeout=120, stdin=subprocess.DEVNULL)
         assert r.returncode == 2, r.stderr
         assert "Traceback" not in r.stderr and r.stderr.startswith("sheafsynth: ")

@@ -37,9 +37,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from engine.errors import PresetError
-from engine.lower import LIMITER_CEILING
-from engine.preset import factory_presets, load_preset
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.ir.lower import LIMITER_CEILING
+from sheafsynth.engine.preset.document import factory_presets, load_preset
 from tests.engine.test_preset import BASE, MALFORMED, mutate
 from tests.hardening.conftest import fuzz_examples
 
@@ -496,7 +496,7 @@ def _fill_valid_sample(check_preset_error, time_limit) -> None:
 @pytest.mark.slow
 def test_valid_presets_compile_and_play_a_finite_note(check_preset_error, time_limit):
     _fill_valid_sample(check_preset_error, time_limit)
-    from engine.instrument import Instrument
+    from sheafsynth.engine.instrument import Instrument
 
     chosen = sorted(VALID)[:COMPILE_SAMPLE]
     assert chosen, "the fuzzers produced no valid preset at all"

@@ -24,7 +24,7 @@ import time
 import numpy as np
 import pytest
 
-from engine.lower import LIMITER_CEILING
+from sheafsynth.engine.ir.lower import LIMITER_CEILING
 from tests.conftest import midi_loss_explained, realtime_criteria, host_xruns
 from tests.hardening.conftest import soak_seconds
 
@@ -73,7 +73,7 @@ def test_soak_300_events_per_second(live, tmp_path):
     seconds = soak_seconds()
     bank_dir = tmp_path / "bank"
     bank_dir.mkdir()
-    from host import bank
+    from sheafsynth.host import bank
 
     os.environ["SHEAFSYNTH_USER_DIR"] = str(bank_dir)
     try:

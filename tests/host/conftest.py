@@ -1,14 +1,10 @@
 """Fixtures for host tests: a tiny C test kernel (the JACK server fixtures are in tests/conftest.py)."""
 
 import os
-import shutil
-import subprocess
-import sys
-import time
 
 import pytest
 
-from engine.build import compile_module
+from sheafsynth.engine.backends.c.build import compile_module
 
 # A test kernel implementing ss_render_fn with an ss_counters-first state.
 # It plays a sine (a drone, or gated by notes), echoes every event it gets

@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 import soundfile
 
-from engine.errors import AudioError
-from host import runtime as rtmod
-from host.audio import AudioOutput, list_audio_devices
+from sheafsynth.engine.errors import AudioError
+from sheafsynth.host.live import runtime as rtmod
+from sheafsynth.host.live.audio import AudioOutput, list_audio_devices
 
 pytestmark = pytest.mark.live
 

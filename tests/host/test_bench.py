@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from host import bench
+from sheafsynth.host.bench import run as bench
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -27,7 +27,7 @@ def _number(x) -> bool:
 def report(tmp_path_factory):
     """One quick run in a child process, as a user runs it (the kernel cache is the test session's)."""
     out = tmp_path_factory.mktemp("bench") / "report.json"
-    proc = subprocess.run([sys.executable, "-m", "host.cli", "bench", "--quick", "--json", "--out", str(out)],
+    proc = subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", "bench", "--quick", "--json", "--out", str(out)],
                           capture_output=True, text=True, cwd=ROOT, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert "Traceback" not in proc.stderr
@@ -98,7 +98,7 @@ def test_table_renders(report):
 
 def test_bad_output_path_is_one_line_error(tmp_path):
     missing = tmp_path / "no-such-dir" / "r.json"
-    proc = subprocess.run([sys.executable, "-m", "host.cli", "bench", "--quick", "--json", "--out", str(missing)],
+    proc = subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", "bench", "--quick", "--json", "--out", str(missing)],
                           capture_output=True, text=True, cwd=ROOT, timeout=600)
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr and len(proc.stderr.strip().splitlines()) == 1

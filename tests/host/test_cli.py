@@ -11,12 +11,12 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from host.cli import main
+from sheafsynth.host.cli import main
 from tests.measure import cents, fundamental
 
 
 def run(*args, cwd=None):
-    return subprocess.run([sys.executable, "-m", "host.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", *args], capture_output=True, text=True,
                           cwd=cwd, timeout=900)
 
 
@@ -130,7 +130,7 @@ def test_presets_lists_factory_and_user(user_dir, capsys):
 
 
 def test_demo_renders_every_factory_preset(tmp_path):
-    from engine.preset import factory_presets
+    from sheafsynth.engine.preset.document import factory_presets
 
     r = run("demo", "--out-dir", str(tmp_path / "demo"))
     assert r.returncode == 0, r.stderr

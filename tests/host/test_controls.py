@@ -14,14 +14,14 @@ import math
 import mido
 import pytest
 
-from engine import voicing as V
-from engine.errors import PresetError
-from engine.lower import lower
-from engine.preset import ControlSpec, load_preset, parse_preset
-from host.controls import CURVES, MidiTranslator, curve_value
-from host.play import controls_doc
+from sheafsynth.engine.ir import voicing as V
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.preset.document import ControlSpec, load_preset, parse_preset
+from sheafsynth.host.controls import CURVES, MidiTranslator, curve_value
+from sheafsynth.host.live.play import controls_doc
 
-from engine.preset import FACTORY_DIR
+from sheafsynth.engine.locations import FACTORY_DIR
 
 
 def M(*args, **kw):

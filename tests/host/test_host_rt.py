@@ -7,9 +7,9 @@ placement, kernel switching, guards and rings are checked exactly.
 import numpy as np
 import pytest
 
-from engine.errors import AudioError
-from host import runtime as rtmod
-from host.runtime import HostRuntime, KernelSwitchError
+from sheafsynth.engine.errors import AudioError
+from sheafsynth.host.live import runtime as rtmod
+from sheafsynth.host.live.runtime import HostRuntime, KernelSwitchError
 
 RATE = 48000
 BLOCK = 128

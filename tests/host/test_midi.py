@@ -6,10 +6,10 @@ import math
 import mido
 import pytest
 
-from engine.errors import InputError
-from host.midi import ArrivalClock, MidiInputBase, find_port, parse
-from host.play import PlayOptions
-from host.status import StatusInfo, dbfs, format_status
+from sheafsynth.engine.errors import InputError
+from sheafsynth.host.live.midi import ArrivalClock, MidiInputBase, find_port, parse
+from sheafsynth.host.live.play import PlayOptions
+from sheafsynth.host.live.status import StatusInfo, dbfs, format_status
 
 
 # ---------------------------------------------------------------- parsing

@@ -1,6 +1,6 @@
 """Live tests of ``sheafsynth play``: the real process on JACK's dummy backend.
 
-Each test launches ``python -m host.cli play`` with ``--virtual-midi`` (or
+Each test launches ``python -m sheafsynth.host.cli play`` with ``--virtual-midi`` (or
 ``--midi-in``), sends MIDI to it through python-rtmidi's JACK API and checks
 what it recorded (``--record``) and counted (``--report``).  The report's
 timing section maps the host's MIDI arrival stamps (CLOCK_MONOTONIC) to
@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from engine.errors import InputError
+from sheafsynth.engine.errors import InputError
 from tests.conftest import midi_loss_explained, realtime_criteria
 from tests.live import MidiSender, PlayProcess
 
@@ -163,15 +163,15 @@ def portaudio_closed_here():
 
 def check_once(path: Path) -> None:
     """What `sheafsynth check` does for a user preset: analyse it into the shared cache."""
-    from engine import analysis
-    from engine.preset import load_preset
+    from sheafsynth.engine.analysis import report as analysis
+    from sheafsynth.engine.preset.document import load_preset
 
     analysis.check(load_preset(path))
 
 
 def bank_numbers(bank_dir: Path) -> dict[str, int]:
     """Program numbers as the host will number them (bank listing order)."""
-    from host import bank
+    from sheafsynth.host import bank
 
     old = os.environ.get("SHEAFSYNTH_USER_DIR")
     os.environ["SHEAFSYNTH_USER_DIR"] = str(bank_dir)
@@ -257,7 +257,8 @@ def test_session_counts_every_message(main_session):
 
 
 def test_learn_binds_and_save_as_writes_a_user_preset(main_session):
-    from engine.preset import FACTORY_DIR, load_preset
+    from sheafsynth.engine.locations import FACTORY_DIR
+    from sheafsynth.engine.preset.document import load_preset
 
     rep = main_session["rep"]
     assert rep["learned"] == [{"preset": "porch-pluck", "cc": 21, "parameter": "decay"}]
@@ -279,8 +280,8 @@ def test_note_on_sounds_within_two_blocks_at_pitch(main_session, tmp_path):
     the instrument, not of the host: it is measured on the same preset
     offline and taken off.
     """
-    from engine.instrument import Instrument
-    from host import bank
+    from sheafsynth.engine.instrument import Instrument
+    from sheafsynth.host import bank
 
     x, tm = main_session["x"], main_session["timing"]
     inst = Instrument(bank.load("porch-pluck"), rate=RATE, max_block=BLOCK)
@@ -295,7 +296,7 @@ def test_note_on_sounds_within_two_blocks_at_pitch(main_session, tmp_path):
     latency_blocks = (tm.ns_of(onset) - s) / 1e9 / PERIOD_S - intrinsic / BLOCK
     assert -0.25 <= latency_blocks <= 2.0, f"host latency {latency_blocks:.2f} blocks"
 
-    for note, t_on, t_off in ((84, T_LAT_ON, T_LAT_OFF), (69, T_A4_ON, T_A4_OFF)):
+    for note, _t_on, _t_off in ((84, T_LAT_ON, T_LAT_OFF), (69, T_A4_ON, T_A4_OFF)):
         f_on = tm.frame_of(tm.stamp(on(note)))
         f_off = tm.frame_of(tm.stamp(off(note)))
         seg = x[int(f_on + 0.1 * RATE):int(f_off - 0.02 * RATE)]
@@ -562,7 +563,7 @@ def test_sigterm_stops_cleanly_and_reports(jack_server, tmp_path):
 # ------------------------------------------------------------------ bank and learn rules (no stream)
 
 def test_unchecked_user_presets_are_left_out_of_the_bank(jack_server, tmp_path, monkeypatch):
-    from host.play import LiveHost, PlayOptions
+    from sheafsynth.host.live.play import LiveHost, PlayOptions
 
     monkeypatch.setenv("SHEAFSYNTH_USER_DIR", str(tmp_path))
     (tmp_path / "ramp-probe.json").write_text(json.dumps(RAMP_PROBE))
@@ -582,7 +583,7 @@ def test_unchecked_user_presets_are_left_out_of_the_bank(jack_server, tmp_path, 
 
 
 def test_learn_refuses_a_parameter_no_control_maps(jack_server, tmp_path, monkeypatch):
-    from host.play import LiveHost, PlayOptions
+    from sheafsynth.host.live.play import LiveHost, PlayOptions
 
     monkeypatch.setenv("SHEAFSYNTH_USER_DIR", str(tmp_path / "b"))     # prepare() points it at --bank-dir
 
@@ -603,7 +604,7 @@ def test_learn_refuses_a_parameter_no_control_maps(jack_server, tmp_path, monkey
 
 def _run_cli(*args, timeout=120):
     env = dict(os.environ, JACK_NO_START_SERVER="1")
-    return subprocess.run([sys.executable, "-m", "host.cli", *args], cwd=REPO, capture_output=True,
+    return subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", *args], cwd=REPO, capture_output=True,
                           text=True, timeout=timeout, env=env, stdin=subprocess.DEVNULL)
 
 
@@ -664,7 +665,7 @@ def test_terminal_status_line_and_keys(jack_server, tmp_path):
     bank_dir.mkdir()
     master, slave = pty.openpty()
     env = dict(os.environ, JACK_NO_START_SERVER="1", COLUMNS="200")
-    proc = subprocess.Popen([sys.executable, "-m", "host.cli", "play", "porch-pluck", "--device", "JACK",
+    proc = subprocess.Popen([sys.executable, "-m", "sheafsynth.host.cli", "play", "porch-pluck", "--device", "JACK",
                              "--virtual-midi", "sstest-tty", "--bank-dir", str(bank_dir), "--seconds", "60"],
                             cwd=REPO, stdin=slave, stdout=slave, stderr=slave, env=env, close_fds=True)
     os.close(slave)

@@ -17,9 +17,9 @@ from pathlib import Path
 
 import pytest
 
-from host.idle_latency import ShallowIdle
-from host.runtime import HostRuntime
-from host.stall_probe import CAUSES, Stall, StallProbe, explain_coverage, explain_xruns, xrun_causes
+from sheafsynth.host.live.idle_latency import ShallowIdle
+from sheafsynth.host.live.runtime import HostRuntime
+from sheafsynth.host.live.stall_probe import CAUSES, Stall, StallProbe, explain_coverage, explain_xruns, xrun_causes
 
 REPO = Path(__file__).resolve().parents[2]
 PA_OUTPUT_UNDERFLOW = 0x4      # PortAudio v19 portaudio.h: paOutputUnderflow
@@ -164,7 +164,7 @@ def test_callbacks_held_off_the_cpu_are_told_from_slow_ones():
     POSIX clock_gettime(CLOCK_THREAD_CPUTIME_ID) counts only the time the
     thread ran, which is what tells the two apart.
     """
-    from engine.build import compile_module
+    from sheafsynth.engine.backends.c.build import compile_module
 
     mod = compile_module(_TIMING_KERNELS_CDEF, _TIMING_KERNELS_SOURCE, tag="timing")
     state = mod.ffi.new("ss_counters_t *")
@@ -199,7 +199,7 @@ def test_callbacks_held_off_the_cpu_are_told_from_slow_ones():
 
 def test_runtime_logs_slow_callbacks():
     """Callbacks over half the period are logged with their start and duration."""
-    from engine.instrument import Instrument
+    from sheafsynth.engine.instrument import Instrument
 
     inst = Instrument("presets/curb-plate.json", rate=48000, max_block=128)
     for k in range(6):
@@ -257,7 +257,7 @@ def test_shallow_idle_says_why_not(tmp_path):
 
 
 def _cli(*args, timeout=120):
-    return subprocess.run([sys.executable, "-m", "host.cli", *args], cwd=REPO, capture_output=True,
+    return subprocess.run([sys.executable, "-m", "sheafsynth.host.cli", *args], cwd=REPO, capture_output=True,
                           text=True, timeout=timeout, stdin=subprocess.DEVNULL)
 
 
@@ -280,7 +280,7 @@ def test_jitter_command_text_and_bad_input():
 
 
 def test_jitter_verdicts():
-    from host.jitter_cmd import _verdict
+    from sheafsynth.host.commands.jitter import _verdict
 
     base = dict(period_s=128 / 48000, seconds=10.0, realtime=True, stalls=0, skipped=0,
                 stalls_per_minute=0.0, worst_late_s=0.0001)
@@ -293,7 +293,7 @@ def test_jitter_verdicts():
 
 
 def test_play_stop_line_names_the_xrun_causes():
-    from host.play import _xrun_summary
+    from sheafsynth.host.live.play import _xrun_summary
 
     assert _xrun_summary({"xruns": 0, "callbacks_blocked": 0}) == "0 xruns"
     machine = {"xruns_explained": 3, "xruns_preempted": 1, "xruns_slow_callback": 0, "xruns_elsewhere": 1}

@@ -13,10 +13,11 @@ import mido
 import numpy as np
 import pytest
 
-from engine import voicing as V
-from engine.instrument import Instrument
-from engine.preset import FACTORY_DIR, load_preset
-from host.controls import MidiTranslator
+from sheafsynth.engine.ir import voicing as V
+from sheafsynth.engine.instrument import Instrument
+from sheafsynth.engine.locations import FACTORY_DIR
+from sheafsynth.engine.preset.document import load_preset
+from sheafsynth.host.controls import MidiTranslator
 
 POLY = 4
 BLOCK = 128
@@ -171,7 +172,7 @@ def test_repeated_note_does_not_stack_held_voices(rig):
 
 def test_stolen_voice_fades_out_instead_of_being_cut(preset):
     """Stealing ramps the old note down over RAMP_FADE_S (a few ms) before the new one starts."""
-    from engine.lower import RAMP_FADE_S
+    from sheafsynth.engine.ir.lower import RAMP_FADE_S
 
     inst = Instrument(preset, rate=48000, max_block=BLOCK, polyphony=1)
     tr = MidiTranslator(preset, inst.program.param_index)

@@ -1,0 +1,455 @@
+"""Modes of a linear network: partials, decay times, tuning, drift.
+
+Input is the one-sample update matrix A (n×n, dense or scipy.sparse), an
+output map C (p×n) and the sample rate fs in Hz.  Each eigenvalue z of A is
+a mode: frequency f = arg(z)·fs/(2π) Hz, amplitude factor |z| per sample,
+so a 60 dB decay (factor 10⁻³) takes m = −3/log10|z| samples and
+
+    T60 = 3 / (fs · (−log10 |z|))   seconds.
+
+Notes are MIDI-numbered with A4 = 440 Hz: f = 440·2^((n − 69)/12).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Mapping, Sequence
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from sheafsynth.engine.errors import SheafsynthError
+from sheafsynth.engine.analysis.stability import AnalysisError
+
+__all__ = [
+    "Mode",
+    "DriftMode",
+    "PlotUnavailable",
+    "modes",
+    "drift_modes",
+    "all_poles",
+    "note_name",
+    "t60_from_radius",
+    "plot_report",
+]
+
+NOTE_NAMES = ("C", "C#", "D", "D#", "E", "F", "F#", "G", "G#", "A", "A#", "B")
+
+#: States up to which eigenvectors come from a dense solver.
+DENSE_MAX = 400
+
+
+class PlotUnavailable(SheafsynthError):
+    """matplotlib is not installed; the message says how to get it."""
+
+
+@dataclass(frozen=True)
+class Mode:
+    """One partial (one of a conjugate pair).
+
+    freq_hz: Hz; t60_s: s (inf if |z| ≥ 1); radius: |z| per sample;
+    harmonic_number / cents_from_harmonic: nearest harmonic of the
+    fundamental and the distance to it (cents); note_name / cents_from_note:
+    nearest equal-tempered note (A4 = 440 Hz) and the distance (cents);
+    energy_by_cell: share of the eigenvector's squared norm per cell (0..1);
+    observability: |C v| for unit-norm eigenvector v (output weight);
+    is_fundamental: this mode is the chosen fundamental.
+    """
+
+    freq_hz: float
+    t60_s: float
+    radius: float
+    cents_from_harmonic: float
+    harmonic_number: int
+    note_name: str
+    cents_from_note: float
+    energy_by_cell: dict = field(default_factory=dict)
+    eigenvalue: complex = 0j
+    observability: float = 1.0
+    is_fundamental: bool = False
+
+    def growth_db_per_s(self, fs: float) -> float:
+        """Level change per second in dB (negative = decaying), fs in Hz."""
+        return 20.0 * float(fs) * math.log10(self.radius) if self.radius > 0 else -math.inf
+
+
+@dataclass(frozen=True)
+class DriftMode:
+    """An eigenvalue at z = 1 (a DC level that never decays).
+
+    dominant_cells: (cell, energy share) pairs, largest first, share ≥ 0.1;
+    grows: the eigenvalue 1 is defective (a Jordan block), so the level
+    grows linearly with time instead of holding.
+    """
+
+    eigenvalue: complex
+    vector: np.ndarray
+    dominant_cells: list
+    grows: bool = False
+
+
+def t60_from_radius(radius: float, fs: float) -> float:
+    """T60 in seconds of a mode with amplitude factor `radius` per sample."""
+    if radius <= 0.0:
+        return 0.0
+    if radius >= 1.0:
+        return math.inf
+    return 3.0 / (float(fs) * (-math.log10(radius)))
+
+
+def note_name(freq_hz: float) -> tuple[str, float]:
+    """Nearest MIDI note name (C4 = 60, A4 = 69 = 440 Hz) and cents from it."""
+    if not (freq_hz > 0.0):
+        raise AnalysisError(f"note name needs a positive frequency, got {freq_hz}")
+    m = 69.0 + 12.0 * math.log2(freq_hz / 440.0)
+    n = int(round(m))
+    return f"{NOTE_NAMES[n % 12]}{n // 12 - 1}", 100.0 * (m - n)
+
+
+def _as_op(A):
+    if sp.issparse(A):
+        A = sp.csr_matrix(A, dtype=float)
+    else:
+        A = np.atleast_2d(np.asarray(A, dtype=float))
+    if A.shape[0] != A.shape[1]:
+        raise AnalysisError(f"A must be square, got shape {A.shape}")
+    data = A.data if sp.issparse(A) else A
+    if not np.all(np.isfinite(data)):
+        raise AnalysisError("A has non-finite entries")
+    return A
+
+
+def _partition(partition, n) -> dict[str, np.ndarray]:
+    out = {}
+    for name, ix in (partition or {}).items():
+        idx = np.arange(n)[ix] if isinstance(ix, slice) else np.atleast_1d(np.asarray(ix))
+        if idx.dtype.kind not in "iu":
+            raise AnalysisError(f"partition[{name!r}]: state indices must be integers")
+        if idx.size and (idx.min() < -n or idx.max() >= n):
+            raise AnalysisError(f"partition[{name!r}]: index out of range for {n} states")
+        out[str(name)] = idx
+    return out
+
+
+def _shares(v, part) -> dict[str, float]:
+    e = np.abs(v) ** 2
+    tot = float(e.sum())
+    if tot == 0.0:
+        return {k: 0.0 for k in part}
+    return {k: float(e[ix].sum()) / tot for k, ix in part.items()}
+
+
+def _sparse_probe_eigs(A, freqs_hz, fs, k):
+    """Eigenpairs of sparse A nearest to e^{iω} at each probe frequency."""
+    n = A.shape[0]
+    Ac = sp.csc_matrix(A, dtype=complex)
+    I = sp.identity(n, dtype=complex, format="csc")
+    vals, vecs = [], []
+    for f in freqs_hz:
+        sigma = complex(np.exp(2j * np.pi * f / fs)) * (1.0 + 1e-9)
+        try:
+            lu = spla.splu((Ac - sigma * I).tocsc())
+            op = spla.LinearOperator((n, n), matvec=lambda x, lu=lu: lu.solve(np.asarray(x, dtype=complex)),
+                                     dtype=complex)
+            mu, V = spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300)
+        except spla.ArpackNoConvergence as exc:  # keep what did converge
+            mu, V = exc.eigenvalues, exc.eigenvectors
+        except (RuntimeError, spla.ArpackError):
+            continue
+        if len(mu) == 0:
+            continue
+        vals.extend(sigma + 1.0 / mu)
+        vecs.extend(V.T)
+    if not vals:
+        raise AnalysisError("sparse eigensolver found no modes")
+    vals = np.asarray(vals)
+    vecs = np.asarray(vecs)
+    # drop duplicates found by neighbouring probes
+    keep: list[int] = []
+    for i, z in enumerate(vals):
+        if keep and np.min(np.abs(vals[keep] - z)) <= 1e-9 * max(1.0, abs(z)):
+            continue
+        keep.append(i)
+    return vals[keep], vecs[keep].T
+
+
+def _eigs(A, *, dense_max, fs, f_lo, f_hi, count):
+    n = A.shape[0]
+    if n <= dense_max or not sp.issparse(A):
+        dense = A.toarray() if sp.issparse(A) else A
+        w, V = np.linalg.eig(dense)
+        return w, V
+    n_probe = 12
+    freqs = np.geomspace(max(f_lo, 1.0), max(f_hi, f_lo * 1.01, 2.0), n_probe)
+    k = max(1, min(n - 2, max(2 * count, 16)))
+    return _sparse_probe_eigs(A, freqs, fs, k)
+
+
+def modes(
+    A,
+    C,
+    fs: float,
+    *,
+    count: int = 12,
+    partition: Mapping[str, object] | None = None,
+    f_lo_hz: float = 20.0,
+    f_hi_hz: float | None = None,
+    include_edges: bool = False,
+    strong_fraction: float = 0.1,
+    dense_max: int = DENSE_MAX,
+) -> list[Mode]:
+    """The `count` slowest-decaying audible partials of x⁺ = Ax, y = Cx.
+
+    C may be None (every mode weighted 1); fs is the sample rate in Hz.
+
+    Audible: f_lo_hz ≤ f ≤ f_hi_hz (default min(20 kHz, 0.499·fs)); with
+    include_edges, every mode including f = 0 and f = fs/2 (real
+    eigenvalues).  Only the upper one of each conjugate pair; modes with
+    observability below 1e-9 of the largest are dropped (they cannot be
+    heard at the output).  Sorted slowest-decaying first (largest |z|).
+
+    Fundamental rule: among the candidates, "strong" modes have
+    observability ≥ strong_fraction × the largest and T60 ≥ strong_fraction
+    × the longest; the fundamental is the lowest-frequency strong mode.
+    Harmonic number = round(f / f0) (at least 1).
+
+    Large sparse A (> dense_max states): eigenvalues nearest to 12 probe
+    points e^{iω} log-spaced over the audible band (shift-invert); this
+    finds the slow modes near each probe, not a guaranteed global ranking.
+    partition: {cell name: slice or index array} over state indices.
+    """
+    if not (fs > 0.0):
+        raise AnalysisError(f"sample rate must be positive, got {fs}")
+    if count < 1:
+        raise AnalysisError(f"count must be >= 1, got {count}")
+    A = _as_op(A)
+    n = A.shape[0]
+    part = _partition(partition, n)
+    fs / 2.0
+    f_hi = min(20000.0, 0.499 * fs) if f_hi_hz is None else float(f_hi_hz)
+    if n == 0:
+        return []
+    w, V = _eigs(A, dense_max=dense_max, fs=fs, f_lo=f_lo_hz, f_hi=f_hi, count=count)
+    if C is None:
+        Cm = None
+    else:
+        Cm = C.toarray() if sp.issparse(C) else np.atleast_2d(np.asarray(C, dtype=float))
+        if Cm.shape[1] != n:
+            raise AnalysisError(f"C has {Cm.shape[1]} columns for {n} states")
+    cand = []
+    for i, z in enumerate(w):
+        tol = 1e-12 * max(1.0, abs(z))
+        if z.imag < -tol:
+            continue  # the conjugate partner is kept instead
+        f = float(abs(np.angle(z))) * fs / (2.0 * np.pi)
+        if not include_edges and not (f_lo_hz <= f <= f_hi):
+            continue
+        if not include_edges and (abs(z.imag) <= tol):
+            continue
+        v = V[:, i]
+        v = v / max(np.linalg.norm(v), 1e-300)
+        obs = 1.0 if Cm is None else float(np.linalg.norm(Cm @ v))
+        cand.append((complex(z), f, v, obs))
+    if not cand:
+        return []
+    omax = max(c[3] for c in cand)
+    cand = [c for c in cand if c[3] >= 1e-9 * omax]
+    radii = np.array([abs(c[0]) for c in cand])
+    t60s = np.array([t60_from_radius(r, fs) for r in radii])
+    obs = np.array([c[3] for c in cand])
+    tmax = np.max(t60s)
+    if math.isinf(tmax):
+        strong = (obs >= strong_fraction * obs.max()) & np.isinf(t60s)
+    else:
+        strong = (obs >= strong_fraction * obs.max()) & (t60s >= strong_fraction * tmax)
+    freqs = np.array([c[1] for c in cand])
+    positive = strong & (freqs > 0)
+    f0 = float(freqs[positive].min()) if positive.any() else None
+    order = np.argsort(-radii, kind="stable")[:count]
+    out = []
+    for i in order:
+        z, f, v, o = cand[i]
+        if f0 and f > 0:
+            h = max(1, int(round(f / f0)))
+            cents_h = 1200.0 * math.log2(f / (h * f0))
+        else:
+            h, cents_h = 0, 0.0
+        if f > 0:
+            name, cents_n = note_name(f)
+        else:
+            name, cents_n = "", 0.0
+        out.append(Mode(
+            freq_hz=f, t60_s=float(t60s[i]), radius=float(radii[i]),
+            cents_from_harmonic=cents_h, harmonic_number=h,
+            note_name=name, cents_from_note=cents_n,
+            energy_by_cell=_shares(v, part), eigenvalue=z, observability=o,
+            is_fundamental=bool(f0 is not None and f == f0),
+        ))
+    return out
+
+
+def all_poles(A, *, dense_max: int = 2000) -> np.ndarray:
+    """Every eigenvalue of A (dense solve; for plots), up to dense_max states."""
+    A = _as_op(A)
+    if A.shape[0] > dense_max:
+        raise AnalysisError(f"{A.shape[0]} states: too many to list every pole (max {dense_max})")
+    return np.linalg.eigvals(A.toarray() if sp.issparse(A) else A)
+
+
+def drift_modes(A, tol: float = 1e-9, *, partition=None, dense_max: int = DENSE_MAX) -> list[DriftMode]:
+    """Eigenvalues of A within `tol` of z = 1, with the cells that carry them.
+
+    Dense: an orthonormal basis of the null space of A − I (one DriftMode per
+    basis vector); `grows` is set when more eigenvalues lie within
+    max(tol, 1e-6) of 1 than the null space has dimensions (a Jordan block:
+    linear growth).  Sparse large A: shift-invert near z = 1.
+    """
+    A = _as_op(A)
+    n = A.shape[0]
+    part = _partition(partition, n)
+    if n == 0:
+        return []
+    if n <= dense_max or not sp.issparse(A):
+        dense = A.toarray() if sp.issparse(A) else A
+        M = dense - np.eye(n)
+        _, s, Vh = np.linalg.svd(M)
+        null = Vh[s <= tol * max(1.0, np.linalg.norm(dense, 2))].conj().T
+        ev = np.linalg.eigvals(dense)
+        alg = int(np.sum(np.abs(ev - 1.0) <= max(tol, 1e-6)))
+        grows = alg > null.shape[1]
+        out = []
+        for j in range(null.shape[1]):
+            v = null[:, j]
+            out.append(DriftMode(1.0 + 0j, v, _dominant(v, part), grows))
+        return out
+    k = min(6, n - 2)
+    try:
+        vals, vecs = spla.eigs(A, k=k, sigma=1.0 + 1e-7, which="LM")
+    except (RuntimeError, spla.ArpackError, spla.ArpackNoConvergence) as exc:
+        raise AnalysisError(f"drift-mode search did not converge: {exc}") from None
+    out = []
+    for z, v in zip(vals, vecs.T):
+        if abs(z - 1.0) <= tol:
+            out.append(DriftMode(complex(z), v, _dominant(v, part), False))
+    return out
+
+
+def _dominant(v, part) -> list:
+    sh = _shares(v, part)
+    return sorted(((c, s) for c, s in sh.items() if s >= 0.1), key=lambda cs: -cs[1])
+
+
+def _cents(c: float) -> str:
+    v = round(float(c), 1)
+    return f"{0.0 if v == 0 else v:+.1f} c"
+
+
+def plot_report(
+    path,
+    poles: Sequence[complex],
+    mode_list: Sequence[Mode],
+    *,
+    title: str = "",
+    spectral_radius: float | None = None,
+) -> None:
+    """Write one PNG: poles and unit circle, partial ladder, T60 bars.
+
+    matplotlib is imported here (the plot extra); PlotUnavailable if absent.
+    """
+    try:
+        import matplotlib  # noqa: PLC0415
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt  # noqa: PLC0415
+    except ImportError:
+        raise PlotUnavailable("install the plot extra: pip install sheafsynth[plot]") from None
+
+    poles = np.asarray(list(poles), dtype=complex)
+    ms = list(mode_list)
+    fig, (ax_z, ax_l, ax_t) = plt.subplots(1, 3, figsize=(15, 5.2), gridspec_kw={"width_ratios": [1, 1.1, 1.3]})
+    if title:
+        fig.suptitle(title, fontsize=13, fontweight="bold")
+
+    # 1. poles against the unit circle
+    th = np.linspace(0, 2 * np.pi, 512)
+    ax_z.plot(np.cos(th), np.sin(th), color="0.3", lw=1.0, label="unit circle")
+    if poles.size:
+        out = np.abs(poles) >= 1.0
+        ax_z.scatter(poles.real[~out], poles.imag[~out], s=9, color="tab:blue", label="pole (decays)")
+        if out.any():
+            ax_z.scatter(poles.real[out], poles.imag[out], s=22, color="tab:red", marker="x",
+                         label="pole on/outside (rings or grows)")
+    rho = spectral_radius if spectral_radius is not None else (float(np.max(np.abs(poles))) if poles.size else 0)
+    ax_z.set_title(f"Poles against the unit circle\nspectral radius {rho:.8f} (1 − ρ = {1 - rho:.2e})",
+                   fontsize=10)
+    ax_z.set_aspect("equal")
+    ax_z.set_xlim(-1.15, 1.15)
+    ax_z.set_ylim(-1.15, 1.15)
+    ax_z.axhline(0, color="0.85", lw=0.6)
+    ax_z.axvline(0, color="0.85", lw=0.6)
+    ax_z.set_xlabel("Re z")
+    ax_z.set_ylabel("Im z")
+    ax_z.legend(loc="lower left", fontsize=7, framealpha=0.8)
+    angles = [abs(np.angle(m.eigenvalue)) for m in ms if m.freq_hz > 0]
+    if poles.size and angles and max(angles) < 0.6:  # partials crowd z = 1: add a zoom
+        span = max(angles) * 1.15 + 0.01
+        ins = ax_z.inset_axes([0.50, 0.50, 0.46, 0.46])
+        arc = np.linspace(-0.02, span, 200)
+        ins.plot(np.cos(arc), np.sin(arc), color="0.3", lw=1.0)
+        near = (np.abs(np.angle(poles)) <= span) & (poles.imag >= 0)
+        ins.scatter(poles.real[near], poles.imag[near], s=8,
+                    color=np.where(np.abs(poles[near]) >= 1.0, "tab:red", "tab:blue"))
+        ins.set_xlim(math.cos(span) - 0.01, 1.01)
+        ins.set_ylim(-0.01, math.sin(span) + 0.01)
+        ins.text(0.04, 0.04, "zoom near z = 1", transform=ins.transAxes, fontsize=7, color="0.3")
+        ins.tick_params(labelsize=6)
+
+    # 2. partial ladder vs harmonic series (log frequency: one octave per unit)
+    fund = [m for m in ms if m.is_fundamental]
+    pos = [m for m in ms if m.freq_hz > 0]
+    f0 = fund[0].freq_hz if fund else (min(m.freq_hz for m in pos) if pos else None)
+    ax_l.set_title("Partials (right) vs harmonic series of f0 (left)", fontsize=10)
+    if f0:
+        hs = set(range(1, 9)) | {m.harmonic_number for m in pos if m.harmonic_number > 0}
+        top = max([max(hs)] + [m.freq_hz / f0 for m in pos])
+        for h in sorted(hs):
+            if h > top * 1.05:
+                continue
+            ax_l.hlines(math.log2(h), 0.55, 1.0, color="0.6", lw=1.0, linestyles="dashed")
+            ax_l.text(0.53, math.log2(h), f"{h}·f0", ha="right", va="center", fontsize=7, color="0.4")
+        for m in pos:
+            r = math.log2(m.freq_hz / f0)
+            ax_l.hlines(r, 1.1, 1.55, color="tab:green" if m.is_fundamental else "tab:orange", lw=2.2)
+            if m.harmonic_number > 0:
+                ax_l.plot([1.0, 1.1], [math.log2(m.harmonic_number), r], color="0.7", lw=0.7)
+            ax_l.text(1.58, r, f"{m.freq_hz:.1f} Hz {m.note_name} "
+                      f"({_cents(m.cents_from_harmonic)} from {m.harmonic_number}·f0)", va="center", fontsize=7)
+        ax_l.set_ylim(-0.3, math.log2(top) + 0.3)
+    ax_l.set_xlim(0.2, 2.9)
+    ax_l.set_xticks([])
+    ax_l.set_ylabel("octaves above f0")
+    for side in ("top", "right", "bottom"):
+        ax_l.spines[side].set_visible(False)
+
+    # 3. T60 bars
+    ax_t.set_title("Decay time T60 of the slowest partials", fontsize=10)
+    if ms:
+        srt = sorted(ms, key=lambda m: m.freq_hz)
+        labels = [f"{m.freq_hz:.0f} Hz {m.note_name}" for m in srt]
+        vals = [m.t60_s if math.isfinite(m.t60_s) else 0.0 for m in srt]
+        colors = ["tab:red" if not math.isfinite(m.t60_s) else "tab:blue" for m in srt]
+        y = np.arange(len(srt))
+        ax_t.barh(y, vals, color=colors)
+        vmax = max(vals) if max(vals) > 0 else 1.0
+        for yi, m in zip(y, srt):
+            txt = "no decay" if not math.isfinite(m.t60_s) else f"{m.t60_s:.2f} s"
+            ax_t.text((m.t60_s if math.isfinite(m.t60_s) else 0) + 0.01 * vmax, yi, txt, va="center", fontsize=7)
+        ax_t.set_yticks(y)
+        ax_t.set_yticklabels(labels, fontsize=7)
+        ax_t.set_xlim(0, vmax * 1.18)
+    ax_t.set_xlabel("T60 (s)")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)

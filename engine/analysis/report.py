@@ -1,0 +1,436 @@
+"""``sheafsynth check``: the truth about a preset before it reaches speakers.
+
+The report (a plain dict, JSON shape in engine/analysis/schema/check-report.json):
+
+* frozen stability: spectral radius of the held voice's A(θ) at every
+  corner of the box spanned by the mapped parameters (controls' ranges)
+  and at its centre, at the lowest, middle and highest notes;
+* stability under knob motion: a certificate from sheafsynth.engine.analysis.certify
+  ("any-speed", "ramp-limited" with the slope, or False with the reason);
+* modes: frequency, note, T60, inharmonicity and the cells carrying each of
+  the slowest-decaying partials (middle note, parameter defaults);
+* drift: eigenvalues at z = 1, named by the cells that carry them;
+* fields: dim H⁰, face consistency and the λ²μ_max bound per corner.
+
+Results are cached by the preset's content (and this module's version) in
+the kernel cache folder, so render and play can afford the guard rails.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+from typing import Iterable
+
+import numpy as np
+
+from sheafsynth.engine.analysis.assemble import assemble
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.locations import ENGINE_DIR, cache_dir
+from sheafsynth.engine.ir.lower import StepProgram, lower, note_hz
+from sheafsynth.engine.preset.document import Preset
+
+ANALYSIS_VERSION = 3
+EXACT_MAX_STATES = 700           # dense eigenvalues up to this size; sparse probes above
+MARGIN = 1e-9
+
+
+class UnstableError(PresetError):
+    """The preset has a growing or undamped mode at some corner of its knob box."""
+
+
+# --------------------------------------------------------------------------
+# the parameter box and the notes
+
+def mapped_box(preset: Preset) -> dict[str, tuple[float, float]]:
+    """Range of every parameter a controller can move (control min/max)."""
+    box: dict[str, tuple[float, float]] = {}
+    for c in preset.controls:
+        if c.parameter is None:
+            continue
+        lo, hi = sorted((c.lo, c.hi))
+        if c.parameter in box:
+            lo, hi = min(lo, box[c.parameter][0]), max(hi, box[c.parameter][1])
+        box[c.parameter] = (lo, hi)
+    return box
+
+
+def check_notes(preset: Preset, notes: Iterable[int] | None = None) -> list[int]:
+    if notes:
+        out = sorted({int(n) for n in notes})
+        for n in out:
+            if not 0 <= n <= 127:
+                raise PresetError(f"note {n} is outside 0..127", "--notes")
+        return out
+    lo, hi = preset.notes
+    return sorted({lo, (lo + hi) // 2, hi})
+
+
+def corners_and_centre(box) -> list[dict[str, float]]:
+    from sheafsynth.engine.analysis.stability import corners
+
+    pts = corners(dict(box)) if box else [{}]
+    if box:
+        pts.append({n: 0.5 * (lo + hi) for n, (lo, hi) in box.items()})
+    return pts
+
+
+# --------------------------------------------------------------------------
+# frozen stability
+
+def _exact_radius(A) -> tuple[float, complex | None]:
+    """Spectral radius by dense eigenvalues, or the rigorous sparse scan."""
+    n = A.shape[0]
+    if n == 0:
+        return 0.0, None
+    if n <= EXACT_MAX_STATES:
+        import scipy.linalg as sla
+
+        ev = sla.eigvals(A.toarray(), check_finite=False)
+        i = int(np.argmax(np.abs(ev)))
+        return float(abs(ev[i])), complex(ev[i])
+    from sheafsynth.engine.analysis.stability import spectral_radius
+
+    return float(spectral_radius(A)), None
+
+
+def _state_estimate(prog: StepProgram, note: float) -> int:
+    """Size of the held voice's state without assembling it (delays at the note's period)."""
+    n = 0
+    period = prog.rate / note_hz(note)
+    for b in prog.blocks:
+        if b.is_delay:
+            n += b.delay_length if not b.pitch else int(period) + 2
+        elif b.is_field:
+            n += 2 * b.field.n_dof
+        else:
+            n += b.n_state
+    return n
+
+
+def _exact_radius_drift(A) -> tuple[float, complex | None, int]:
+    """(radius over the modes that are not DC drift, its eigenvalue, number of drift modes).
+
+    A drift mode is a simple eigenvalue at exactly z = 1 (geometric = algebraic
+    multiplicity): a constant level that neither grows nor decays, like a free
+    bar at rest in a new place.  A defective (Jordan) one grows and counts as
+    an ordinary marginal eigenvalue.
+    """
+    n = A.shape[0]
+    if n == 0 or n > EXACT_MAX_STATES:
+        r, z = _exact_radius(A)
+        return r, z, 0
+    import scipy.linalg as sla
+
+    M = A.toarray()
+    ev = sla.eigvals(M, check_finite=False)
+    at_one = np.abs(ev - 1.0) < 1e-9
+    alg = int(at_one.sum())
+    drift = 0
+    if alg:
+        geo = n - np.linalg.matrix_rank(M - np.eye(n), tol=1e-9)
+        if geo == alg:
+            drift = alg
+            ev = ev[~at_one]
+    if len(ev) == 0:
+        return 0.0, None, drift
+    i = int(np.argmax(np.abs(ev)))
+    return float(abs(ev[i])), complex(ev[i]), drift
+
+
+def _field_drift(prog: StepProgram) -> int:
+    from sheafsynth.engine.analysis.fields import drift_count
+
+    return sum(drift_count(b.field) for b in prog.blocks if b.is_field)
+
+
+def _field_radii(prog: StepProgram, theta, note) -> dict[int, float]:
+    """Exact frozen radius of every field cell (engine.analysis.fields)."""
+    from sheafsynth.engine.analysis.fields import field_radius
+
+    env = {p.name: float(p.value) for p in prog.params}
+    env.update(theta)
+    out = {}
+    for b in prog.blocks:
+        if b.is_field:
+            r = field_radius(b.field, env, float(note), prog.rate)
+            if r is not None:
+                out[b.index] = r
+    return out
+
+
+def _slowest_mode_radius(sysm) -> float | None:
+    """Radius of the slowest-decaying partial found by shift-invert probes (a lower bound)."""
+    from sheafsynth.engine.analysis.modes import modes
+
+    ms = modes(sysm.A, sysm.C, sysm.rate, count=4)
+    return max((m.radius for m in ms), default=None)
+
+
+def frozen(prog: StepProgram, box, notes) -> dict:
+    """Spectral radius at every corner (and centre) for every note.
+
+    Small systems get dense eigenvalues.  Large ones (long delay lines at low
+    notes) get a rigorous upper bound from the scaled small-gain test
+    (engine.analysis.certify.radius_upper_bound) and, at the worst such point, the
+    radius of the slowest partial found by shift-invert (a lower bound); the
+    sparse eigenvalue scan is the fallback when no bound below 1 exists.
+    """
+    from sheafsynth.engine.analysis.certify import radius_upper_bound
+
+    points = []
+    worst = None
+    for note in notes:
+        for theta in corners_and_centre(box):
+            z = None
+            n_est = _state_estimate(prog, note)
+            if n_est > EXACT_MAX_STATES:
+                fr = _field_radii(prog, theta, note)
+                bound = radius_upper_bound(prog, theta, note, field_radius=fr)
+                if bound is not None:
+                    pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": bound,
+                          "exact": False, "upper_bound": bound, "states": n_est, "_sys": None}
+                    drift = _field_drift(prog)
+                    if drift:
+                        pt["drift"] = drift
+                    points.append(pt)
+                    if worst is None or bound > worst["radius"]:
+                        worst = pt
+                    continue
+            sysm = assemble(prog, theta, note)
+            if sysm.n_states > EXACT_MAX_STATES:
+                # no bound below 1: an eigenvalue found outside the unit circle
+                # by shift-invert proves instability without the slow full scan
+                lo = _slowest_mode_radius(sysm)
+                if lo is not None and lo > 1.0 + MARGIN:
+                    pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": lo,
+                          "exact": False, "lower_bound": lo, "states": sysm.n_states}
+                    points.append(pt)
+                    if worst is None or lo > worst["radius"]:
+                        worst = pt
+                    continue
+            r, z, drift = _exact_radius_drift(sysm.A)
+            exact = True
+            pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": r,
+                  "exact": exact, "states": sysm.n_states}
+            if drift:
+                pt["drift"] = drift
+            if z is not None and r >= 1.0 - MARGIN:
+                f = abs(math.atan2(z.imag, z.real)) * prog.rate / (2 * math.pi)
+                pt["mode"] = {"freq_hz": f, "growth_db_per_s": 20 * prog.rate * math.log10(max(r, 1e-300))}
+            points.append(pt)
+            if worst is None or r > worst["radius"]:
+                worst = pt
+    rmax = worst["radius"] if worst else 0.0
+    status = "stable" if rmax < 1.0 - MARGIN else ("marginal" if rmax <= 1.0 + MARGIN else "unstable")
+    if status == "stable" and any(p.get("drift") for p in points):
+        status = "drift"
+    # at bounded points the reported radius is the (tight) upper bound
+    bounded = [p for p in points if "_sys" in p]
+    for p in bounded:
+        del p["_sys"]
+    found = max((p["radius"] for p in points), default=0.0)
+    worst = max(points, key=lambda p: p["radius"]) if points else None
+    return {"status": status, "radius_max": found, "worst": worst, "points": points,
+            "exact": all(p["exact"] for p in points),
+            "radius_upper_bound": max((p["upper_bound"] for p in bounded), default=None)}
+
+
+# --------------------------------------------------------------------------
+# the report
+
+_CODE_DIGEST: list[str] = []
+
+
+def _code_digest() -> str:
+    """Hash of the engine's sources: a changed analysis never reuses old reports."""
+    if not _CODE_DIGEST:
+        h = hashlib.sha256()
+        for p in sorted(ENGINE_DIR.rglob("*.py")):
+            h.update(p.read_bytes())
+        _CODE_DIGEST.append(h.hexdigest())
+    return _CODE_DIGEST[0]
+
+
+def _preset_hash(preset: Preset, notes, rate) -> str:
+    h = hashlib.sha256()
+    h.update(json.dumps(preset.raw, sort_keys=True).encode())
+    h.update(json.dumps([list(notes), rate, ANALYSIS_VERSION, _code_digest()]).encode())
+    return h.hexdigest()[:24]
+
+
+def _cache_path(key: str) -> Path:
+    return cache_dir() / "analysis" / f"{key}.json"
+
+
+def _cached(key: str):
+    p = _cache_path(key)
+    try:
+        return json.loads(p.read_text())
+    except (OSError, ValueError):
+        return None
+
+
+def is_checked(preset: Preset, notes: Iterable[int] | None = None, rate: float = 48000.0) -> bool:
+    """True when a full ``check`` report for ``preset`` is in the cache (so guarding it is quick).
+
+    ``sheafsynth check NAME`` stores its report at the default rate and notes.
+    """
+    notes = check_notes(preset, notes)
+    return _cached(_preset_hash(preset, notes, rate)) is not None
+
+
+def _store(key: str, report: dict) -> None:
+    p = _cache_path(key)
+    try:
+        p.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=p.parent, suffix=".tmp")
+        with os.fdopen(fd, "w") as f:
+            json.dump(report, f)
+        os.replace(tmp, p)
+    except OSError:
+        pass
+
+
+def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 48000.0,
+          n_modes: int = 8, use_cache: bool = True, with_modes: bool = True) -> dict:
+    """The full check report for ``preset`` (see the module docstring).
+
+    ``with_modes=False`` skips the modal part (the guard rails need only the
+    verdict and the certificate).
+    """
+    notes = check_notes(preset, notes)
+    key = _preset_hash(preset, notes, rate) + ("" if with_modes else "-v")
+    if use_cache:
+        hit = _cached(key)
+        if hit is not None:
+            return hit
+    prog = lower(preset, rate)
+    box = mapped_box(preset)
+    fz = frozen(prog, box, notes)
+    report = {
+        "preset": preset.name,
+        "rate": rate,
+        "notes": notes,
+        "box": {k: list(v) for k, v in box.items()},
+        "stable": fz["status"] in ("stable", "drift"),
+        "frozen": fz["status"],
+        "spectral_radius_max": fz["radius_max"],
+        "radius_exact": fz["exact"],
+        "radius_upper_bound": fz["radius_upper_bound"],
+        "worst_corner": {"note": fz["worst"]["note"], "values": fz["worst"]["corner"]} if fz["worst"] else None,
+        "corners": fz["points"],
+        "warnings": [],
+    }
+    if fz["status"] == "drift":
+        report["warnings"].append("DC drift: some state holds a constant level after a note (bounded, "
+                                  "never growing); see drift_modes")
+    if fz["status"] not in ("stable", "drift"):
+        report["certified"] = False
+        report["route"] = "none"
+        report["slope_per_s"] = {}
+        report["failing"] = _describe_point(fz["worst"], fz["status"])
+    else:
+        report.update(_certificate(prog, preset, box, notes))
+        if not report["radius_exact"] and report["certified"] is False:
+            report["warnings"].append("the spectral radius of the largest networks is a sparse estimate and no "
+                                      "certificate backs it")
+    if report["stable"] and report["certified"] is False:
+        report["warnings"].append("frozen-stable only: fast knob motion is not proven safe")
+    mid = notes[len(notes) // 2]
+    report["modes"], report["drift_modes"] = _modes(prog, mid, n_modes) if with_modes else ([], [])
+    report["mode_note"] = mid
+    report["fields"] = _fields(prog, preset, box)
+    if use_cache:
+        _store(key, report)
+    return report
+
+
+def _describe_point(pt: dict, status: str) -> str:
+    vals = ", ".join(f"{k}={v:g}" for k, v in pt["corner"].items()) or "default values"
+    text = f"{status} at note {pt['note']} with {vals}: spectral radius {pt['radius']:.9f}"
+    if "mode" in pt:
+        m = pt["mode"]
+        text += f" (mode at {m['freq_hz']:.2f} Hz, {m['growth_db_per_s']:+.3f} dB/s)"
+    return text
+
+
+def _certificate(prog, preset, box, notes) -> dict:
+    from sheafsynth.engine.analysis.certify import certify_network
+
+    cert = certify_network(prog, box, notes)
+    slopes = {k: v * prog.rate for k, v in cert.slope_per_sample.items()}
+    return {"certified": cert.certified, "route": cert.route, "gain_loop_rho": cert.rho,
+            "slope_per_s": slopes, "failing": cert.failing, "certificate_notes": cert.notes}
+
+
+def _fields(prog, preset, box) -> list[dict]:
+    out = []
+    for b in prog.blocks:
+        if not b.is_field:
+            continue
+        info = b.field.model.summary()
+        info["cell"] = b.name
+        out.append(info)
+    return out
+
+
+def _modes(prog: StepProgram, note: int, count: int):
+    from sheafsynth.engine.analysis.modes import drift_modes, modes
+
+    sysm = assemble(prog, None, note)
+    ms = modes(sysm.A, sysm.C, prog.rate, count=count, partition=sysm.partition)
+    out = []
+    for m in ms:
+        share = sorted(m.energy_by_cell.items(), key=lambda kv: -kv[1])
+        out.append({"freq_hz": float(m.freq_hz), "note": m.note_name, "cents_from_note": float(m.cents_from_note),
+                    "t60_s": float(m.t60_s) if math.isfinite(m.t60_s) else None,
+                    "harmonic": int(m.harmonic_number), "cents_from_harmonic": float(m.cents_from_harmonic),
+                    "radius": float(m.radius), "fundamental": bool(m.is_fundamental),
+                    "cells": {k: round(float(v), 4) for k, v in share[:3]}})
+    drift = []
+    for d in drift_modes(sysm.A, partition=sysm.partition):
+        drift.append({"eigenvalue": 1.0,
+                      "cells": {str(name): round(float(share), 4) for name, share in d.dominant_cells},
+                      "grows": bool(d.grows)})
+    return out, drift
+
+
+# --------------------------------------------------------------------------
+# guard rails for render and play
+
+def guard(preset: Preset, allow_unstable: bool = False, rate: float = 48000.0) -> list[str]:
+    """Refuse a preset that is not frozen-stable; return warnings otherwise.
+
+    Raises UnstableError naming the offending mode and corner unless
+    ``allow_unstable``.
+    """
+    report = check(preset, rate=rate, with_modes=False)
+    if not report["stable"]:
+        msg = report.get("failing") or "not stable"
+        if not allow_unstable:
+            raise UnstableError(f"{msg}; refusing to play it (use --allow-unstable to override, "
+                                "the output limiter stays on)", "stability")
+        return [f"playing an unstable preset: {msg}"]
+    return list(report["warnings"])
+
+
+def ramp_limits(preset: Preset, rate: float = 48000.0) -> dict[str, float]:
+    """Ramp time (s) per parameter that keeps the kernel within a ramp-limited proof.
+
+    The proof bounds the change per *sample*; the report states it per second
+    at the analysis rate, so the time is rescaled to the playing ``rate``.
+    """
+    report = check(preset, with_modes=False)
+    if report.get("certified") != "ramp-limited":
+        return {}
+    out = {}
+    for name, per_s in report.get("slope_per_s", {}).items():
+        spec = preset.parameters[name]
+        if per_s > 0:
+            out[name] = (spec.hi - spec.lo) / per_s * (report["rate"] / float(rate))
+    return out

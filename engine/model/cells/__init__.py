@@ -1,0 +1,48 @@
+"""Cell kinds: the spec table from preset JSON to a cell model.
+
+Each kind is one entry in ``CELL_KINDS`` mapping the JSON ``kind`` string to
+a builder ``build(spec, path, parameters) -> CellModel``.  A new cell kind is
+a new module here plus one line in the table (see DEVELOPERS.md); the JSON
+Schema lists the same kinds and a test checks the two agree.
+
+Every linear kind lowers to a small parameter-affine state-space block
+``s+ = A s + B u``, ``y = C s + D u``; a delay line is kept as a ring buffer
+(a chain of identity restriction maps is a shift, never a dense matrix).
+"""
+
+from __future__ import annotations
+
+from typing import Callable, Mapping
+
+from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.model.cells.model import CellModel, DelaySpec  # noqa: F401  (re-exported)
+from sheafsynth.engine.model.cells import delay
+from sheafsynth.engine.model.cells import field
+from sheafsynth.engine.model.cells import filters
+from sheafsynth.engine.model.cells import statespace
+
+CellBuilder = Callable[[dict, str, Mapping], CellModel]
+
+CELL_KINDS: dict[str, CellBuilder] = {
+    "delay": delay.build,
+    "statespace": statespace.build_statespace,
+    "gain": statespace.build_gain,
+    "onepole": filters.build_onepole,
+    "biquad": filters.build_biquad,
+    "allpass": filters.build_allpass,
+    "field": field.build,
+}
+
+
+def register_kind(kind: str, builder: CellBuilder) -> None:
+    """Add a cell kind (used by optional modules such as fields)."""
+    CELL_KINDS[kind] = builder
+
+
+def build_cell(spec: dict, path: str, parameters: Mapping) -> CellModel:
+    kind = spec.get("kind")
+    builder = CELL_KINDS.get(kind)
+    if builder is None:
+        known = ", ".join(sorted(CELL_KINDS))
+        raise PresetError(f'unknown cell kind "{kind}" (known: {known})', path + ".kind")
+    return builder(spec, path, parameters)

@@ -1,0 +1,1 @@
+"""sheafsynth.host.commands."""

@@ -1,0 +1,121 @@
+"""``sheafsynth check``: stability, certificate, modes and drift of a preset.
+
+Exit status 0 when the preset is stable at every corner and note, 1 when it
+is not, 2 for bad input.  ``--json`` prints the report (shape in
+engine/schema/check-report.json); ``--plot FILE.png`` draws poles, the
+partial ladder and T60 bars.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+
+from sheafsynth.engine.errors import InputError
+
+
+def _add(p: argparse.ArgumentParser) -> None:
+    p.add_argument("preset", metavar="PRESET")
+    p.add_argument("--notes", metavar="N,N,N", help="MIDI notes to check (default: lowest, middle, highest playable)")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.add_argument("--plot", metavar="FILE.png", help="draw poles, partials and T60 bars to a PNG")
+    p.add_argument("--set", action="append", metavar="NAME=VALUE", help="check with a parameter changed")
+    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 96000))
+    p.add_argument("--no-cache", action="store_true", help="recompute instead of reusing a stored report")
+
+
+def _notes(text: str | None):
+    if not text:
+        return None
+    try:
+        return [int(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise InputError(f"--notes {text!r}: expected MIDI note numbers separated by commas") from None
+
+
+def _fmt_t60(t) -> str:
+    return "   inf" if t is None or not math.isfinite(t) else f"{t:6.2f}"
+
+
+def render_text(r: dict) -> str:
+    L = []
+    w = L.append
+    w(f"preset {r['preset']}   notes {', '.join(map(str, r['notes']))}   rate {r['rate']:g} Hz")
+    box = ", ".join(f"{k} {v[0]:g}..{v[1]:g}" for k, v in r["box"].items()) or "no mapped parameters"
+    w(f"knob box: {box}")
+    verdict = {"stable": "STABLE", "drift": "STABLE apart from DC drift (bounded)", "marginal": "NOT STRICTLY STABLE (lossless somewhere)",
+               "unstable": "UNSTABLE"}[r["frozen"]]
+    kind = "exact" if r["radius_exact"] else "rigorous upper bound"
+    w(f"frozen: {verdict}   largest spectral radius {r['spectral_radius_max']:.9f} ({kind})")
+    if r.get("worst_corner"):
+        wc = r["worst_corner"]
+        vals = ", ".join(f"{k}={v:g}" for k, v in wc["values"].items()) or "defaults"
+        w(f"        worst at note {wc['note']} with {vals}")
+    cert = r["certified"]
+    if cert == "any-speed":
+        w(f"knob motion: CERTIFIED at any speed  ({r['route']})")
+    elif cert == "ramp-limited":
+        slopes = ", ".join(f"{k} <= {v:.4g}/s" for k, v in r["slope_per_s"].items())
+        w(f"knob motion: CERTIFIED while ramps stay slow ({slopes}); the kernel's ramps are set to respect it")
+        w(f"             ({r['route']})")
+    else:
+        w("knob motion: NOT CERTIFIED")
+    if r.get("failing"):
+        w(f"        reason: {r['failing']}")
+    for n in r.get("certificate_notes", []):
+        w(f"        note: {n}")
+    for warn in r["warnings"]:
+        w(f"warning: {warn}")
+    w("")
+    w(f"slowest partials at note {r.get('mode_note')} (parameter defaults)")
+    w("     freq Hz   note        T60 s   harmonic  cents   cells")
+    for m in r["modes"]:
+        cells = ", ".join(f"{k} {100 * v:.0f}%" for k, v in m.get("cells", {}).items())
+        w(f"  {m['freq_hz']:10.3f}   {m['note']:<5} {m['cents_from_note']:+6.1f}  {_fmt_t60(m['t60_s'])}   "
+          f"{m['harmonic']:>5}  {m['cents_from_harmonic']:+6.2f}   {cells}")
+    if r["drift_modes"]:
+        for d in r["drift_modes"]:
+            w(f"drift: eigenvalue 1 carried by {d['cells']}{' (grows)' if d.get('grows') else ''}")
+    else:
+        w("drift: none (no eigenvalue at z = 1)")
+    for f in r["fields"]:
+        extra = ", ".join(f"{k} {v}" for k, v in f.items() if k != "cell")
+        w(f"field {f['cell']}: {extra}")
+    return "\n".join(L)
+
+
+def _run(args) -> int:
+    from sheafsynth.engine.analysis.report import check
+
+    from sheafsynth.host.cli import _load
+
+    preset = _load(args.preset, args.set)
+    report = check(preset, _notes(args.notes), float(args.rate), use_cache=not args.no_cache)
+    if args.plot:
+        _plot(preset, report, args.plot, float(args.rate))
+    if args.json:
+        print(json.dumps(report, indent=2, default=float))
+    else:
+        print(render_text(report))
+    return 0 if report["stable"] else 1
+
+
+def _plot(preset, report, path, rate) -> None:
+    import numpy as np
+
+    from sheafsynth.engine.analysis.assemble import assemble
+    from sheafsynth.engine.ir.lower import lower
+    from sheafsynth.engine.analysis.modes import all_poles, modes, plot_report
+
+    prog = lower(preset, rate)
+    sysm = assemble(prog, None, report["mode_note"])
+    poles = all_poles(sysm.A) if sysm.n_states <= 1500 else np.array([m.eigenvalue for m in
+                                                                         modes(sysm.A, sysm.C, rate, count=40)])
+    ms = modes(sysm.A, sysm.C, rate, count=12, partition=sysm.partition)
+    plot_report(path, poles, ms, title=f"{preset.name} at note {report['mode_note']}",
+                spectral_radius=report["spectral_radius_max"])
+    print(f"wrote {path}")
+
+
+COMMANDS = [("check", "check stability over every knob's range; modes, T60, drift", _add, _run)]
