@@ -23,8 +23,8 @@ from typing import Mapping
 import numpy as np
 import scipy.sparse as sp
 
-from sheafsynth.engine.ir.lower import StepProgram
-from sheafsynth.engine.ir.fields import assemble_block
+from sheafsynth.engine.analysis.assemble_field import assemble_block
+from sheafsynth.engine.ir.program import StepProgram
 from sheafsynth.engine.ir.tuning import tune_all
 
 

@@ -13,25 +13,13 @@ Routes, tried in order:
   motion, see ``delay_lengths_fixed``), static gains max |g| over the
   corners, the pitch-set tuning allpass gain 1 (one orthogonal lattice
   section), filters the γ of a common storage at every corner
-  (engine.analysis.stability.l2_gain_common_storage);
+  (engine.analysis.storage.l2_gain_common_storage);
 * **any-speed, ℓ∞**: delays 1, static gains their max row sum, convex
-  combination filters 1 (engine.analysis.stability.linf_gain_convex_filter);
+  combination filters 1 (engine.analysis.gains.linf_gain_convex_filter);
 * **ramp-limited, ℓ2**: as the first route, but a filter whose common
   storage gain is too large gets a parameter-dependent storage
-  V = sᵀP(θ)s, P affine in θ, and the dissipation inequality
-
-      [A B; C D]ᵀ diag(P(θ⁺), I) [A B; C D] ⪯ diag(P(θ), γ² I)
-
-  for all θ in the box and |θ⁺ − θ| ≤ δ per sample.  With a slack matrix G
-  (Oliveira, Bernussou & Geromel 1999 style) it is implied by the LMI
-
-      [[diag(P(θ), γ²I), [A B]ᵀG, [C D]ᵀ], [Gᵀ[A B], G + Gᵀ − P(θ⁺), 0], [[C D], 0, I]] ≻ 0,
-
-  which is affine in (θ, θ⁺) jointly; the admissible (θ, θ⁺) set is a
-  product of hexagons, so checking its vertices proves it everywhere.  When
-  the parameters move only the output map [C D] (A and B constant), the
-  slack is not needed: the plain Schur form with P(θ⁺) in place of G is
-  already affine in (θ, θ⁺), and far less conservative.
+  V = sᵀP(θ)s, P affine in θ, valid while |θ⁺ − θ| ≤ δ per sample
+  (engine.analysis.storage: the LMI and why its vertices suffice).
   Summing the inequality along any path gives ‖y‖² ≤ γ²‖u‖² + V(s₀).  The
   largest δ found is the slope the kernel's ramp must never exceed; the
   analysis turns it into a ramp time (engine.analysis.report.ramp_limits).
@@ -45,22 +33,43 @@ from __future__ import annotations
 
 import itertools
 import math
-import warnings
 from dataclasses import dataclass, field
 from typing import Mapping
 
 import numpy as np
+import scipy.sparse as sps
+from scipy.sparse.csgraph import connected_components
 
-from sheafsynth.engine.ir.lower import Block, StepProgram
-from sheafsynth.engine.analysis.stability import (CellGain, CellModel as GainCell, WireModel, build_gain_matrix, cell_gain, corners,
-                        network_small_gain)
-from sheafsynth.engine.ir.tuning import KEEP_HI, KEEP_LO, TAU_MIN, block_response, loop_frequency, phase_delay
+from sheafsynth.engine.analysis.fields import moving_symbols
+from sheafsynth.engine.analysis.gains import (CellGain, CellModel as GainCell, WireModel, build_gain_matrix, cell_gain,
+                                              frozen_hinf, network_small_gain, peak_gain)
+from sheafsynth.engine.analysis.spectra import corners
+from sheafsynth.engine.analysis.storage import largest_ramp_slope
+from sheafsynth.engine.ir.program import Block, StepProgram
+from sheafsynth.engine.ir.tuning import (KEEP_HI, KEEP_LO, TAU_MIN, block_response, loop_frequency, phase_delay,
+                                         tune_all)
+
+__all__ = [
+    "NetworkCertificate",
+    "delay_lengths_fixed",
+    "cyclic_blocks",
+    "certify_network",
+    "radius_upper_bound",
+]
 
 Box = Mapping[str, tuple[float, float]]
 
 
 @dataclass
 class NetworkCertificate:
+    """What was proven about a voice network while knobs move (see the module docstring).
+
+    certified: "any-speed", "ramp-limited" or False; route names the proof;
+    rho: spectral radius of the gain matrix used (dimensionless);
+    slope_per_sample: per parameter, the largest change per sample (parameter
+    units) the proof allows; failing: why nothing (more) was proven.
+    """
+
     certified: str | bool                   # "any-speed", "ramp-limited" or False
     route: str
     rho: float | None = None                # spectral radius of the gain matrix used
@@ -116,111 +125,8 @@ def delay_lengths_fixed(prog: StepProgram, box: Box, notes, grid: int = 9) -> tu
     return True, ""
 
 
-def _peak_gain(A, B, C, D, zs) -> float:
-    """max over the points ``zs`` of the largest singular value of D + C (zI - A)^-1 B."""
-    k = A.shape[0]
-    if k:
-        M = zs[:, None, None] * np.eye(k)[None] - A[None]
-        try:
-            H = D[None] + C[None] @ np.linalg.solve(M, np.broadcast_to(B, (len(zs),) + B.shape))
-        except np.linalg.LinAlgError:      # a pole on the grid: unbounded gain
-            return math.inf
-    else:
-        H = np.broadcast_to(D, (len(zs),) + D.shape)
-    if H.shape[1] == 1 and H.shape[2] == 1:
-        return float(np.max(np.abs(H)))
-    return float(np.max(np.linalg.svd(H, compute_uv=False)))
-
-
-def _hinf(blocks_corners, n_freq: int = 2048) -> float:
-    """Largest frozen H∞ norm over the corners (frequency grid; a lower bound)."""
-    zs = np.exp(1j * np.linspace(0, math.pi, n_freq))
-    return max(_peak_gain(A, B, C, D, zs) for A, B, C, D in blocks_corners)
-
-
-def _hexagon(lo: float, hi: float, d: float) -> list[tuple[float, float]]:
-    d = min(d, hi - lo)
-    pts = [(lo, lo), (lo, lo + d), (hi - d, hi), (hi, hi), (hi, hi - d), (lo + d, lo)]
-    return list(dict.fromkeys(pts))
-
-
-def ramp_storage_gain(b: Block, prog: StepProgram, box: Box, gamma: float, delta_frac: float):
-    """Affine storage P(θ) proving ℓ2 gain ``gamma`` for slopes ≤ delta_frac·range per sample.
-
-    Returns the storage pieces or None when not proven (see module docstring).
-    """
-    try:
-        import cvxpy as cp
-    except ImportError:
-        return None
-    names = sorted(s for s in _symbols(b) if s in box)
-    k, m, p = b.n_state, b.n_in, b.n_out
-    if k == 0 or not names:
-        return None
-    P0 = cp.Variable((k, k), symmetric=True)
-    Pi = {n: cp.Variable((k, k), symmetric=True) for n in names}
-    state_fixed = not ((b.A.symbols | b.B.symbols) & set(box))
-    G = None if state_fixed else cp.Variable((k, k))
-    cons = []
-    hexes = [_hexagon(box[n][0], box[n][1], delta_frac * (box[n][1] - box[n][0])) for n in names]
-    verts = list(itertools.product(*hexes))
-    eps = 1e-7
-    numeric = []
-    for v in verts:
-        now = {n: t for n, (t, _) in zip(names, v)}
-        nxt = {n: t for n, (_, t) in zip(names, v)}
-        A, B, C, D = _block_matrices(b, _env(prog, now))
-        AB, CD = np.hstack([A, B]), np.hstack([C, D])
-        P_now = P0 + sum(now[n] * Pi[n] for n in names)
-        P_nxt = P0 + sum(nxt[n] * Pi[n] for n in names)
-        top = cp.bmat([[P_now, np.zeros((k, m))], [np.zeros((m, k)), gamma ** 2 * np.eye(m)]])
-        if state_fixed:
-            M = cp.bmat([[top, AB.T @ P_nxt, CD.T],
-                         [P_nxt @ AB, P_nxt, np.zeros((k, p))],
-                         [CD, np.zeros((p, k)), np.eye(p)]])
-        else:
-            M = cp.bmat([[top, AB.T @ G, CD.T],
-                         [G.T @ AB, G + G.T - P_nxt, np.zeros((k, p))],
-                         [CD, np.zeros((p, k)), np.eye(p)]])
-        cons.append(0.5 * (M + M.T) >> eps * np.eye(2 * k + m + p))
-        numeric.append((now, nxt, AB, CD))
-    prob = cp.Problem(cp.Minimize(0), cons)
-    ok = False
-    for solver in ("CLARABEL",):      # an interior-point answer or none: "not proven" is cheap
-        if solver not in cp.installed_solvers():
-            continue
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                prob.solve(solver=solver, verbose=False)
-        except Exception:
-            continue
-        if prob.status in ("optimal", "optimal_inaccurate") and P0.value is not None:
-            ok = True
-            break
-    if not ok:
-        return None
-    p0 = np.array(P0.value)
-    pis = {n: np.array(Pi[n].value) for n in names}
-    g = None if G is None else np.array(G.value)
-    # independent check at every vertex with plain eigenvalues
-    for now, nxt, AB, CD in numeric:
-        Pn = p0 + sum(now[n] * pis[n] for n in names)
-        Px = p0 + sum(nxt[n] * pis[n] for n in names)
-        top = np.block([[Pn, np.zeros((k, m))], [np.zeros((m, k)), gamma ** 2 * np.eye(m)]])
-        gg, corner = (Px, Px) if g is None else (g, g + g.T - Px)
-        M = np.block([[top, AB.T @ gg, CD.T], [gg.T @ AB, corner, np.zeros((k, p))],
-                      [CD, np.zeros((p, k)), np.eye(p)]])
-        if np.linalg.eigvalsh(0.5 * (M + M.T)).min() <= 0.0:
-            return None
-    return {"P0": p0, "P": pis, "G": g}
-
-
 def cyclic_blocks(prog: StepProgram) -> set[str]:
     """Names of the cells that lie on a directed cycle of the wiring."""
-    import scipy.sparse as sps
-    from scipy.sparse.csgraph import connected_components
-
     n = len(prog.blocks)
     owner = {b.out_signal + r: b.index for b in prog.blocks for r in range(b.n_out)}
     rows, cols = [], []
@@ -259,8 +165,6 @@ def _gain_cells(prog: StepProgram, box: Box, fixed_delays: bool):
         if b.is_delay:
             cells.append(GainCell(b.name, "delay", length_varies=not fixed_delays))
         elif b.is_field:
-            from sheafsynth.engine.analysis.fields import moving_symbols
-
             moving = sorted(moving_symbols(b.field) & set(box))
             if b.name in cyclic:
                 special[b.name] = f'field "{b.name}" lies on a feedback loop; no route covers that yet'
@@ -336,7 +240,7 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
     frozen_gains = {}
     for c in cells:
         if c.kind == "filter":
-            frozen_gains[c.name] = _hinf(c.corners)
+            frozen_gains[c.name] = frozen_hinf(c.corners)
             if not math.isfinite(frozen_gains[c.name]):
                 return NetworkCertificate(False, "none", failing=f'cell "{c.name}" has a pole on the unit circle '
                                           "(not strictly stable)", notes=notes_out)
@@ -376,7 +280,10 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
             final.append(anyspeed)
             continue
         b = prog.block_named(c.name)
-        frac = _largest_delta(b, prog, box, target)
+        names = sorted(s for s in _symbols(b) if s in box)
+        state_fixed = not ((b.A.symbols | b.B.symbols) & set(box))
+        frac = largest_ramp_slope(lambda th, b=b: _block_matrices(b, _env(prog, th)), names, box, target,
+                                  state_fixed=state_fixed)
         if frac is None:
             return NetworkCertificate(False, "none", failing=f'filter "{c.name}": no storage proves gain '
                                       f"{target:.6f} even for slow knob motion", notes=notes_out)
@@ -415,32 +322,6 @@ def _largest_inflation(gains, wires, scaled: set[str]) -> float:
     return lo
 
 
-def _largest_delta(b: Block, prog: StepProgram, box: Box, gamma: float) -> float | None:
-    """Largest slope (fraction of range per sample, bisection on a log scale) with a storage proof."""
-    lo, hi = 0.0, None
-    d = 1e-4
-    if ramp_storage_gain(b, prog, box, gamma, d) is None:
-        d = 1e-6
-        if ramp_storage_gain(b, prog, box, gamma, d) is None:
-            return None
-    lo = d
-    while d < 1.0:
-        d2 = min(1.0, d * 8)
-        if ramp_storage_gain(b, prog, box, gamma, d2) is None:
-            hi = d2
-            break
-        lo = d = d2
-    if hi is None:
-        return 1.0
-    for _ in range(6):
-        mid = math.sqrt(lo * hi)
-        if ramp_storage_gain(b, prog, box, gamma, mid) is None:
-            hi = mid
-        else:
-            lo = mid
-    return lo
-
-
 # --------------------------------------------------------------------------
 # a fast frozen bound for large networks
 
@@ -455,8 +336,6 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
     gives the smallest such r; None when even r = 1 is not proven (then the
     caller falls back to an eigenvalue method).
     """
-    from sheafsynth.engine.ir.tuning import tune_all
-
     env = _env(prog, theta)
     lens = {}
     for lp, (n, a) in zip(prog.loops, tune_all(prog, note, env)):
@@ -481,7 +360,7 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
         wires += [WireModel(src, b.name, (g,)) for src, g in acc.items()]
 
     def hinf_scaled(A, B, C, D, r: float) -> float:
-        return _peak_gain(A, B, C, D, r * zs)
+        return peak_gain(A, B, C, D, r * zs)
 
     cyclic = cyclic_blocks(prog)
 

@@ -21,8 +21,15 @@ from typing import Mapping
 
 import numpy as np
 
+from sheafsynth.engine.analysis.assemble_field import assemble_block
+from sheafsynth.engine.analysis.spectra import DENSE_ONE_OFF_MAX
+from sheafsynth.engine.ir.fields import coefficients, kappa2
+
+__all__ = ["field_radius", "drift_count", "moving_symbols"]
+
+#: id(field program) -> (field program, (eigenvalues of L, of S or None or "noncommuting") or None);
+#: one diagonalisation per field, reused at every corner and note.
 _SPECTRA: dict[int, tuple] = {}
-DENSE_MAX = 3000
 
 
 def _spectrum(fp):
@@ -32,7 +39,7 @@ def _spectrum(fp):
         return hit[1]
     n = fp.n_dof
     L = fp.L.toarray() if hasattr(fp.L, "toarray") else np.asarray(fp.L)
-    if n > DENSE_MAX:
+    if n > DENSE_ONE_OFF_MAX:
         out = None
     else:
         lam, V = np.linalg.eigh(0.5 * (L + L.T))
@@ -62,15 +69,17 @@ def _quadratic_radius(b: np.ndarray, c: np.ndarray) -> np.ndarray:
 
 
 def field_radius(fp, env: Mapping[str, float], pitch: float, rate: float) -> float | None:
-    """Spectral radius of the field's held update, DC drift modes left out; None if unknown.
+    """Spectral radius (per sample) of the field's held update, DC drift modes left out; None if unknown.
+
+    env: parameter values; pitch: MIDI note number; rate: sample rate in Hz.
+    Fields whose L and S do not commute get a dense eigen-solve of their
+    2n × 2n update (n = DOFs) up to DENSE_ONE_OFF_MAX states, else None.
 
     A mode with ℓ = s = 0 (the kernel of the operator: a free field's
     constant displacement, counted by ``drift_count``) has the roots 1 and
     cv: a level that stays where the strike left it.  It is bounded, so it is
     excluded from the radius and reported as drift instead.
     """
-    from sheafsynth.engine.ir.fields import coefficients, kappa2
-
     k = coefficients(fp, env, kappa2(fp, pitch, rate, env), 1.0)
     spec = _spectrum(fp)
     if spec is not None and (spec[1] is None or not isinstance(spec[1], str)):
@@ -86,9 +95,7 @@ def field_radius(fp, env: Mapping[str, float], pitch: float, rate: float) -> flo
         r = _quadratic_radius(b, c)
         # the null modes keep their other root, cv
         return float(max(np.max(r[~null], initial=0.0), k["cv"] if null.any() else 0.0))
-    if fp.n_dof <= 800:
-        from sheafsynth.engine.ir.fields import assemble_block
-
+    if 2 * fp.n_dof <= DENSE_ONE_OFF_MAX:
         A = assemble_block(fp, env, pitch, rate)[0]
         return float(np.max(np.abs(np.linalg.eigvals(A.toarray()))))
     return None

@@ -20,8 +20,9 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from sheafsynth.engine.analysis.spectra import AnalysisError
 from sheafsynth.engine.errors import SheafsynthError
-from sheafsynth.engine.analysis.stability import AnalysisError
+from sheafsynth.engine.model.dense import DENSE_MAX
 
 __all__ = [
     "Mode",
@@ -37,8 +38,6 @@ __all__ = [
 
 NOTE_NAMES = ("C", "C#", "D", "D#", "E", "F", "F#", "G", "G#", "A", "A#", "B")
 
-#: States up to which eigenvectors come from a dense solver.
-DENSE_MAX = 400
 
 
 class PlotUnavailable(SheafsynthError):

@@ -27,15 +27,37 @@ from pathlib import Path
 from typing import Iterable
 
 import numpy as np
+import scipy.linalg as sla
 
 from sheafsynth.engine.analysis.assemble import assemble
+from sheafsynth.engine.analysis.certify import certify_network, radius_upper_bound
+from sheafsynth.engine.analysis.fields import drift_count, field_radius
+from sheafsynth.engine.analysis.modes import drift_modes, modes
+from sheafsynth.engine.analysis.spectra import corners, spectral_radius
 from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.ir.program import StepProgram, note_hz
 from sheafsynth.engine.locations import ENGINE_DIR, cache_dir
-from sheafsynth.engine.ir.lower import StepProgram, lower, note_hz
-from sheafsynth.engine.preset.document import Preset
+from sheafsynth.engine.model.dense import DENSE_MAX
+from sheafsynth.engine.preset import Preset
 
+__all__ = [
+    "ANALYSIS_VERSION",
+    "MARGIN",
+    "UnstableError",
+    "mapped_box",
+    "check_notes",
+    "corners_and_centre",
+    "frozen",
+    "is_checked",
+    "check",
+    "guard",
+    "ramp_limits",
+]
+
+#: Bump when the report's meaning changes (cached reports are then ignored).
 ANALYSIS_VERSION = 3
-EXACT_MAX_STATES = 700           # dense eigenvalues up to this size; sparse probes above
+#: Tolerance on ρ = 1 (per sample): below 1 − MARGIN is stable, above 1 + MARGIN unstable.
 MARGIN = 1e-9
 
 
@@ -60,6 +82,7 @@ def mapped_box(preset: Preset) -> dict[str, tuple[float, float]]:
 
 
 def check_notes(preset: Preset, notes: Iterable[int] | None = None) -> list[int]:
+    """The MIDI notes to check: ``notes`` if given (each 0..127), else the preset's lowest, middle and highest."""
     if notes:
         out = sorted({int(n) for n in notes})
         for n in out:
@@ -71,8 +94,7 @@ def check_notes(preset: Preset, notes: Iterable[int] | None = None) -> list[int]
 
 
 def corners_and_centre(box) -> list[dict[str, float]]:
-    from sheafsynth.engine.analysis.stability import corners
-
+    """Every corner of the box and its centre (one empty point for an empty box)."""
     pts = corners(dict(box)) if box else [{}]
     if box:
         pts.append({n: 0.5 * (lo + hi) for n, (lo, hi) in box.items()})
@@ -87,14 +109,10 @@ def _exact_radius(A) -> tuple[float, complex | None]:
     n = A.shape[0]
     if n == 0:
         return 0.0, None
-    if n <= EXACT_MAX_STATES:
-        import scipy.linalg as sla
-
+    if n <= DENSE_MAX:
         ev = sla.eigvals(A.toarray(), check_finite=False)
         i = int(np.argmax(np.abs(ev)))
         return float(abs(ev[i])), complex(ev[i])
-    from sheafsynth.engine.analysis.stability import spectral_radius
-
     return float(spectral_radius(A)), None
 
 
@@ -121,11 +139,9 @@ def _exact_radius_drift(A) -> tuple[float, complex | None, int]:
     an ordinary marginal eigenvalue.
     """
     n = A.shape[0]
-    if n == 0 or n > EXACT_MAX_STATES:
+    if n == 0 or n > DENSE_MAX:
         r, z = _exact_radius(A)
         return r, z, 0
-    import scipy.linalg as sla
-
     M = A.toarray()
     ev = sla.eigvals(M, check_finite=False)
     at_one = np.abs(ev - 1.0) < 1e-9
@@ -143,15 +159,11 @@ def _exact_radius_drift(A) -> tuple[float, complex | None, int]:
 
 
 def _field_drift(prog: StepProgram) -> int:
-    from sheafsynth.engine.analysis.fields import drift_count
-
     return sum(drift_count(b.field) for b in prog.blocks if b.is_field)
 
 
 def _field_radii(prog: StepProgram, theta, note) -> dict[int, float]:
     """Exact frozen radius of every field cell (engine.analysis.fields)."""
-    from sheafsynth.engine.analysis.fields import field_radius
-
     env = {p.name: float(p.value) for p in prog.params}
     env.update(theta)
     out = {}
@@ -165,8 +177,6 @@ def _field_radii(prog: StepProgram, theta, note) -> dict[int, float]:
 
 def _slowest_mode_radius(sysm) -> float | None:
     """Radius of the slowest-decaying partial found by shift-invert probes (a lower bound)."""
-    from sheafsynth.engine.analysis.modes import modes
-
     ms = modes(sysm.A, sysm.C, sysm.rate, count=4)
     return max((m.radius for m in ms), default=None)
 
@@ -180,15 +190,13 @@ def frozen(prog: StepProgram, box, notes) -> dict:
     radius of the slowest partial found by shift-invert (a lower bound); the
     sparse eigenvalue scan is the fallback when no bound below 1 exists.
     """
-    from sheafsynth.engine.analysis.certify import radius_upper_bound
-
     points = []
     worst = None
     for note in notes:
         for theta in corners_and_centre(box):
             z = None
             n_est = _state_estimate(prog, note)
-            if n_est > EXACT_MAX_STATES:
+            if n_est > DENSE_MAX:
                 fr = _field_radii(prog, theta, note)
                 bound = radius_upper_bound(prog, theta, note, field_radius=fr)
                 if bound is not None:
@@ -202,7 +210,7 @@ def frozen(prog: StepProgram, box, notes) -> dict:
                         worst = pt
                     continue
             sysm = assemble(prog, theta, note)
-            if sysm.n_states > EXACT_MAX_STATES:
+            if sysm.n_states > DENSE_MAX:
                 # no bound below 1: an eigenvalue found outside the unit circle
                 # by shift-invert proves instability without the slow full scan
                 lo = _slowest_mode_radius(sysm)
@@ -360,8 +368,6 @@ def _describe_point(pt: dict, status: str) -> str:
 
 
 def _certificate(prog, preset, box, notes) -> dict:
-    from sheafsynth.engine.analysis.certify import certify_network
-
     cert = certify_network(prog, box, notes)
     slopes = {k: v * prog.rate for k, v in cert.slope_per_sample.items()}
     return {"certified": cert.certified, "route": cert.route, "gain_loop_rho": cert.rho,
@@ -380,8 +386,6 @@ def _fields(prog, preset, box) -> list[dict]:
 
 
 def _modes(prog: StepProgram, note: int, count: int):
-    from sheafsynth.engine.analysis.modes import drift_modes, modes
-
     sysm = assemble(prog, None, note)
     ms = modes(sysm.A, sysm.C, prog.rate, count=count, partition=sysm.partition)
     out = []

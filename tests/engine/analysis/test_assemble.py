@@ -10,7 +10,7 @@ import scipy.sparse as sp
 
 from sheafsynth.engine.analysis.assemble import assemble, impulse_response
 from sheafsynth.engine.instrument import Instrument
-from sheafsynth.engine.preset.document import factory_presets
+from sheafsynth.engine.preset import factory_presets
 
 
 def _string_presets():

@@ -17,7 +17,7 @@ from sheafsynth.engine.analysis.modes import (
     plot_report,
     t60_from_radius,
 )
-from sheafsynth.engine.analysis.stability import AnalysisError
+from sheafsynth.engine.analysis.spectra import AnalysisError
 
 FS = 48000.0
 

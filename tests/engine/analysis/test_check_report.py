@@ -12,7 +12,7 @@ import pytest
 from sheafsynth.engine.analysis.report import UnstableError, check, guard, ramp_limits
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.locations import ENGINE_DIR, FACTORY_DIR
-from sheafsynth.engine.preset.document import factory_presets, load_preset
+from sheafsynth.engine.preset import factory_presets, load_preset
 from tests.measure import cents, decay_t60, fundamental
 
 SCHEMA = json.loads((ENGINE_DIR / "analysis" / "schema" / "check-report.json").read_text())
