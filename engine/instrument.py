@@ -23,7 +23,8 @@ from sheafsynth.engine.backends.c.build import CompiledModule, compile_module
 from sheafsynth.engine.backends.c.emit import CDEF, generate
 from sheafsynth.engine.errors import PresetError, SheafsynthError
 from sheafsynth.engine.ir.lower import ParamInfo, StepProgram, lower
-from sheafsynth.engine.preset.document import Preset, load_preset
+from sheafsynth.engine.ir.validate import load_checked
+from sheafsynth.engine.preset import Preset
 from sheafsynth.engine.ir import voicing as V
 
 EVENT_CAPACITY = 4096
@@ -47,7 +48,7 @@ class Instrument:
                  min_ramp_s: dict[str, float] | None = None):
         """``min_ramp_s``: per-parameter ramp times (s) a stability certificate
         requires; the host passes engine.analysis.report.ramp_limits(preset) here."""
-        self.preset: Preset = load_preset(preset)
+        self.preset: Preset = load_checked(preset)
         self._min_ramp_s = dict(min_ramp_s or {})
         self._seed = int(seed) & 0xFFFFFFFF
         self._polyphony = polyphony

@@ -18,7 +18,8 @@ import platformdirs
 
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.locations import FACTORY_DIR
-from sheafsynth.engine.preset.document import Preset, load_preset, save_preset
+from sheafsynth.engine.ir.validate import check_preset, load_checked
+from sheafsynth.engine.preset import Preset, save_preset
 
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9 _\-]{0,63}$")
 
@@ -47,7 +48,7 @@ def entries(include_broken: bool = True) -> list[BankEntry]:
             continue
         for path in sorted(folder.glob("*.json")):
             try:
-                p = load_preset(path)
+                p = load_checked(path)
                 out.append(BankEntry(path.stem, path, origin, p.about.split("\n")[0]))
             except PresetError as e:
                 if include_broken:
@@ -71,7 +72,7 @@ def resolve(name_or_path: str) -> Path:
 
 
 def load(name_or_path: str) -> Preset:
-    return load_preset(resolve(name_or_path))
+    return load_checked(resolve(name_or_path))
 
 
 def save_user_preset(doc: dict, name: str) -> Path:
@@ -82,4 +83,4 @@ def save_user_preset(doc: dict, name: str) -> Path:
         raise PresetError(f'"{name}" is a factory preset; save under another name', "name")
     doc = dict(doc)
     doc["name"] = name
-    return save_preset(doc, user_dir() / f"{name}.json")
+    return save_preset(doc, user_dir() / f"{name}.json", check=check_preset)

@@ -167,7 +167,7 @@ def _add_demo(p: argparse.ArgumentParser) -> None:
 def _run_demo(args) -> int:
     import mido
 
-    from sheafsynth.engine.preset.document import factory_presets, load_preset
+    from sheafsynth.engine.preset import factory_presets, load_preset
 
     from sheafsynth.host.offline.render import DEMO_PHRASE, _peak_dbfs, render_midi, write_wav
 

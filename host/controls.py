@@ -19,7 +19,7 @@ from typing import Callable
 
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.preset.document import ControlSpec, Preset
+from sheafsynth.engine.preset import ControlSpec, Preset
 
 CURVES: dict[str, Callable[[float, float, float], float]] = {
     "linear": lambda x, lo, hi: lo + (hi - lo) * x,

@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 from sheafsynth.engine.preset.affine import Affine, AffineMatrix
 from sheafsynth.engine.model.cells import CellModel
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.model.sheaf import EXCITE, OUT, NetworkSheaf, evaluation_order
+from sheafsynth.engine.model.sheaf import EXCITE, OUT, NetworkSheaf, evaluation_order, sheaf_of
 
 MIDI_A4 = 69
 A4_HZ = 440.0
@@ -182,7 +182,7 @@ def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int |
     if rate not in (22050.0, 32000.0, 44100.0, 48000.0, 88200.0, 96000.0, 192000.0):
         if not (8000.0 <= rate <= 192000.0):
             raise PresetError(f"sample rate {rate:g} Hz is outside 8000..192000", "rate")
-    sheaf: NetworkSheaf = preset.sheaf
+    sheaf: NetworkSheaf = sheaf_of(preset)
     min_ramp_s = min_ramp_s or {}
     params = [ParamInfo(p.name, i, p.value, p.lo, p.hi, p.unit, max(p.ramp_ms / 1000.0, min_ramp_s.get(p.name, 0.0)))
               for i, p in enumerate(preset.parameters.values())]

@@ -14,12 +14,17 @@ consumes; it is built once per preset and validated as it is built.
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass
 
 from sheafsynth.engine.preset.affine import AffineMatrix, parse_entry, parse_matrix
+from sheafsynth.engine.preset.spec import Preset
 from sheafsynth.engine.model.cells import CellModel, build_cell
 from sheafsynth.engine.model.cells.field import attach_ports, field_maps, field_symbols
 from sheafsynth.engine.errors import PresetError
+
+__all__ = ["EXCITE", "OUT", "Wire", "NetworkSheaf", "build_sheaf", "sheaf_of", "delay_free_loop",
+           "evaluation_order"]
 
 EXCITE = -1   # the voice's excitation input (an endpoint, not a cell)
 OUT = -2      # the voice's output (an endpoint, not a cell)
@@ -150,8 +155,27 @@ def _parse_end(raw: str, path: str, index: dict[str, int], cells: list[CellModel
     return ci, None, n
 
 
-def build_sheaf(preset) -> NetworkSheaf:
-    """Build and validate the network sheaf of a parsed preset."""
+_SHEAVES: dict[int, tuple[weakref.ref, NetworkSheaf]] = {}
+
+
+def sheaf_of(preset: Preset) -> NetworkSheaf:
+    """The network sheaf of ``preset``, built once per preset object and kept while it lives.
+
+    Raises PresetError (with the JSON path) when the cells or wires are
+    malformed; a failed build is not cached.  Not for the audio thread.
+    """
+    key = id(preset)
+    hit = _SHEAVES.get(key)
+    if hit is not None and hit[0]() is preset:
+        return hit[1]
+    sheaf = build_sheaf(preset)
+    _SHEAVES[key] = (weakref.ref(preset), sheaf)
+    weakref.finalize(preset, _SHEAVES.pop, key, None)
+    return sheaf
+
+
+def build_sheaf(preset: Preset) -> NetworkSheaf:
+    """Build and validate a new network sheaf of a parsed preset (``sheaf_of`` caches it)."""
     raw = preset.raw
     params = preset.parameters
     cells: list[CellModel] = []

@@ -685,7 +685,7 @@ class _Bench:
 
     # -- 4. voice capacity ----------------------------------------------------
     def capacity(self) -> None:
-        from sheafsynth.engine.preset.document import factory_presets
+        from sheafsynth.engine.preset import factory_presets
 
         counts = [512, 2048] if self.quick else [1024, 2048, 3072, 4096]
         nblk = 8 if self.quick else 16
@@ -878,7 +878,7 @@ class _Bench:
         return ns * 1e-9
 
     def _largest_field_preset(self) -> None:
-        from sheafsynth.engine.preset.document import factory_presets
+        from sheafsynth.engine.preset import factory_presets
 
         best = None     # (vertices x stalk, name, raw): sized from the JSON, only the largest compiles
         for path in factory_presets():

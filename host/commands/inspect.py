@@ -9,7 +9,8 @@ the controller map.
 from __future__ import annotations
 
 from sheafsynth.engine.ir.lower import lower
-from sheafsynth.engine.preset.document import Preset
+from sheafsynth.engine.model.sheaf import sheaf_of
+from sheafsynth.engine.preset import Preset
 
 
 def _matrix(rows: list[list[str]], indent: str) -> list[str]:
@@ -20,7 +21,7 @@ def _matrix(rows: list[list[str]], indent: str) -> list[str]:
 
 
 def describe(preset: Preset, rate: float = 48000.0) -> str:
-    sheaf = preset.sheaf
+    sheaf = sheaf_of(preset)
     prog = lower(preset, rate)
     L: list[str] = []
     w = L.append

@@ -10,7 +10,7 @@ from sheafsynth.engine.backends.c.emit import generate, num
 from sheafsynth.engine.errors import BuildError
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.lower import lower
-from sheafsynth.engine.preset.document import load_preset
+from sheafsynth.engine.preset import load_preset
 
 HOSTILE = [
     '*/ #include <stdlib.h>\nint main(){system("rm -rf /");} /*',

@@ -22,7 +22,8 @@ from sheafsynth.engine.ir.fields import stencil_operators
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.lower import lower, note_hz
 from sheafsynth.engine.locations import FACTORY_DIR
-from sheafsynth.engine.preset.document import load_preset
+from sheafsynth.engine.ir.validate import load_checked
+from sheafsynth.engine.model.sheaf import sheaf_of
 from sheafsynth.engine.backends.reference.stepper import ReferenceStepper
 from tests.measure import cents, decay_t60, fundamental
 
@@ -76,7 +77,7 @@ def test_compiled_torus_laplacian_spectrum(m, n):
     circulant matrices); the assembled system's modes follow the leapfrog
     relation 4 sin^2(w/2) = lambda^2 mu (Bilbao 2009)."""
     lam = 0.4
-    prog = lower(load_preset(doc(field(complex={"grid": [m, n], "wrap": "torus"}, speed=lam))))
+    prog = lower(load_checked(doc(field(complex={"grid": [m, n], "wrap": "torus"}, speed=lam))))
     fp = field_block(prog).field
     assert fp.layout == "stencil"
     got = np.sort(np.linalg.eigvalsh(fp.operator_matrix().toarray()))
@@ -114,7 +115,7 @@ def test_square_membrane_mode_ratios_from_assembly():
     five distinct mode frequencies of the assembled system are in the ratios
     sqrt(m^2 + n^2)/sqrt(2) = 1, 1.581, 2.000, 2.236, 2.550 within 1 %
     (Fletcher & Rossing, The Physics of Musical Instruments)."""
-    prog = lower(load_preset(FACTORY_DIR / "bucket-drum.json"), FS)
+    prog = lower(load_checked(FACTORY_DIR / "bucket-drum.json"), FS)
     assert field_block(prog).field.n_dof >= 40 * 40
     hz = distinct(angles_hz(assemble(prog, pitch=48).A, 24))[:5]
     np.testing.assert_allclose(np.array(hz) / hz[0], [1, 1.581, 2.000, 2.236, 2.550], rtol=0.01)
@@ -128,7 +129,7 @@ def test_free_free_bar_mode_ratios_from_assembly():
     free-free bar)."""
     d = doc(field(complex={"path": 40}, boundary="free", dynamics="stiff", speed=0, stiffness=0.3,
                   strike=0.3, pickup=0.05))
-    prog = lower(load_preset(d))
+    prog = lower(load_checked(d))
     z = np.linalg.eigvals(assemble(prog).A.toarray())
     hz = np.sort(np.abs(np.angle(z)))[::2] * FS / (2 * math.pi)
     assert np.sum(hz < 1e-3) == 2                      # translation and rotation (drift modes)
@@ -139,7 +140,7 @@ def test_free_free_bar_mode_ratios_from_assembly():
 def test_factory_bar_partials():
     """crate-bar (16 points) keeps the free-free bar's character: 1 : 2.74 : 5.29
     against 1 : 2.756 : 5.404 (Fletcher & Rossing) within 2.5 %, tuned to the note."""
-    prog = lower(load_preset(FACTORY_DIR / "crate-bar.json"), FS)
+    prog = lower(load_checked(FACTORY_DIR / "crate-bar.json"), FS)
     z = np.linalg.eigvals(assemble(prog, pitch=45).A.toarray())
     hz = np.sort(np.abs(np.angle(z)))[::2] * FS / (2 * math.pi)
     ring = hz[hz > 1.0][:3]
@@ -154,8 +155,8 @@ def test_mobius_has_no_global_section_and_no_dc_mode():
     section)."""
     for wrap, h0 in (("mobius", 0), ("cylinder", 1)):
         d = doc(field(complex={"grid": [6, 9], "wrap": wrap}, boundary="free", speed=0.5))
-        preset = load_preset(d)
-        model: FieldModel = preset.sheaf.cells[0].extra["field"]
+        preset = load_checked(d)
+        model: FieldModel = sheaf_of(preset).cells[0].extra["field"]
         assert model.h0() == h0
         z = np.linalg.eigvals(assemble(lower(preset)).A.toarray())
         at_one = int(np.sum(np.abs(z - 1.0) < 1e-6))
@@ -171,23 +172,23 @@ def test_unstable_speed_refused_with_corner_named():
     params = {"tension": {"value": 0.6, "min": 0.5, "max": 0.75}}
     d = doc(field(complex={"grid": [16, 16], "wrap": "torus"}, speed="tension"), params=params)
     with pytest.raises(PresetError) as e:
-        load_preset(d)
+        load_checked(d)
     msg = str(e.value)
     assert msg.startswith("cells[0].speed: unstable at tension=0.75:")
     assert re.search(r"lambda\^2 mu_max = 4\.5 > 4", msg)
     params["tension"]["max"] = 0.7
-    load_preset(d)                                     # 0.49 * 8 = 3.92: accepted
+    load_checked(d)                                     # 0.49 * 8 = 3.92: accepted
 
 
 def test_unstable_stiffness_and_loss_refused():
     d = doc(field(complex={"path": 20}, dynamics="stiff", speed=0.1, stiffness="stiff"),
             params={"stiff": {"value": 0.3, "min": 0.1, "max": 0.6}})
     with pytest.raises(PresetError, match=r"^cells\[0\]\.stiffness: unstable at stiff=0\.6"):
-        load_preset(d)
+        load_checked(d)
     d = doc(field(complex={"path": 20}, speed=0.5, loss="damp"),
             params={"damp": {"value": 0.001, "min": -0.001, "max": 0.01}})
     with pytest.raises(PresetError, match=r"^cells\[0\]\.loss: loss -0\.001 < 0 is a gain"):
-        load_preset(d)
+        load_checked(d)
 
 
 def test_tuned_field_refused_at_the_highest_note():
@@ -195,7 +196,7 @@ def test_tuned_field_refused_at_the_highest_note():
     d = factory("bucket-drum")
     d["notes"] = [36, 96]
     with pytest.raises(PresetError, match=r"^cells\[1\]\.speed: unstable at note 98 \(highest playable 96"):
-        load_preset(d)
+        load_checked(d)
 
 
 # --------------------------------------------------------------------------
@@ -239,7 +240,7 @@ def test_csr_layout_with_rotation_twist_and_moving_pickup():
                   pickup={"at": "pk", "direction": [0.3, 1]}),
             params={"pk": {"value": 0.1, "min": 0.0, "max": 1.0}},
             wires=[{"from": "excite", "to": "f"}, {"from": "f", "to": "out", "gain": 0.5}])
-    assert field_block(lower(load_preset(d))).field.layout == "csr"
+    assert field_block(lower(load_checked(d))).field.layout == "csr"
     evs = {0: [(0, V.EV_NOTE_ON, 60, 100, 0.0)], 5: [(0, V.EV_PARAM, 0, 0, 0.95)], 40: [(0, V.EV_NOTE_OFF, 60, 0, 0.0)]}
     worst, peak = _kernel_vs_reference(d, evs, seconds=0.25)
     assert peak > 1e-3 and worst <= 1e-5
@@ -257,7 +258,7 @@ def test_stencil_operators_equal_the_sheaf_operators():
         spec = field(complex=cx, boundary=boundary, dynamics="stiff", speed=0.1, stiffness=0.05)
         if twist:
             spec["twist"] = twist
-        prog = lower(load_preset(doc(spec)))
+        prog = lower(load_checked(doc(spec)))
         fp = field_block(prog).field
         assert fp.layout == "stencil", (cx, boundary, twist)
         lap, stiff = stencil_operators(fp.stencil)
@@ -297,7 +298,7 @@ def test_tuned_fields_ring_at_the_played_note(name, notes):
     """Pitch maps to the field: f = 440 * 2^((n - 69)/12) (MIDI 1.0 numbering,
     ISO 16 A4); the lowest mode, measured from the kernel's audio, is within
     0.5 cent of it."""
-    inst = Instrument(load_preset(FACTORY_DIR / f"{name}.json"), rate=FS, strict=True, limiter=False)
+    inst = Instrument(load_checked(FACTORY_DIR / f"{name}.json"), rate=FS, strict=True, limiter=False)
     for note in notes:
         inst.all_sound_off()
         inst.render(512)
@@ -341,7 +342,7 @@ def test_bridge_rings_sympathetic_strings():
 def test_bridge_is_stable_over_its_knob_box():
     """The assembled bridge-trio has spectral radius below 1 at every corner of
     its parameter box (frozen check; the coupling is one-way, a cascade)."""
-    preset = load_preset(FACTORY_DIR / "bridge-trio.json")
+    preset = load_checked(FACTORY_DIR / "bridge-trio.json")
     prog = lower(preset, FS)
     names = list(preset.parameters)
     import itertools
@@ -363,13 +364,13 @@ def test_explicit_inconsistent_faces_refused_or_reported():
     spec = field(complex=TRIANGLES, stalk=2, twist={"edges": [0], "rotate": 45}, speed=0.5,
                  strike={"vertex": 0}, pickup={"vertex": 3})
     with pytest.raises(PresetError, match=r"^cells\[0\]\.consistency: .*face 0"):
-        load_preset(doc(spec))
+        load_checked(doc(spec))
     spec["consistency"] = "report"
-    preset = load_preset(doc(spec))
-    model: FieldModel = preset.sheaf.cells[0].extra["field"]
+    preset = load_checked(doc(spec))
+    model: FieldModel = sheaf_of(preset).cells[0].extra["field"]
     report = model.summary()
     assert len(report["inconsistent_faces"]) == 1 and "face 0" in report["inconsistent_faces"][0]
-    maps = preset.sheaf.restriction_maps()
+    maps = sheaf_of(preset).restriction_maps()
     assert any(m.get("map") == "holonomy" for m in maps)
     prog = lower(preset)
     assert field_block(prog).field.layout == "csr"
@@ -379,8 +380,8 @@ def test_explicit_inconsistent_faces_refused_or_reported():
 
 def test_at_wires_make_ports():
     d = factory("bridge-trio")
-    preset = load_preset(d)
-    bridge = preset.sheaf.cells[preset.sheaf.index["bridge"]]
+    preset = load_checked(d)
+    bridge = sheaf_of(preset).cells[sheaf_of(preset).index["bridge"]]
     assert (bridge.n_in, bridge.n_out) == (2, 3)       # strike + one "at" input; pickup + two "at" outputs
 
 
@@ -404,7 +405,7 @@ def test_bad_field_input_names_the_path(mutate, path, words):
             params={"pk": {"value": 0.5, "min": 0.0, "max": 1.0}})
     mutate(d)
     with pytest.raises(PresetError) as e:
-        load_preset(d)
+        load_checked(d)
     assert e.value.path.startswith(path), str(e.value)
     assert words in str(e.value)
 
@@ -414,7 +415,7 @@ def test_generated_code_has_no_preset_text_and_prefixed_symbols():
     d["cells"][0]["id"] = "zzgongzz"
     d["wires"] = [{k: (v.replace("gong", "zzgongzz") if isinstance(v, str) else v) for k, v in w.items()}
                   for w in d["wires"]]
-    src = generate(lower(load_preset(d)))
+    src = generate(lower(load_checked(d)))
     assert "zzgongzz" not in src and d["about"][:20] not in src
     for name in re.findall(r"^static\s+(?:const\s+)?[a-z0-9_]+\s+\**([A-Za-z_][A-Za-z0-9_]*)\s*[\[(=]", src, re.M):
         assert name.startswith(("ssk_", "ss_")), name

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from sheafsynth.engine.instrument import Instrument
-from sheafsynth.engine.preset.document import factory_presets, load_preset
+from sheafsynth.engine.preset import factory_presets, load_preset
 from sheafsynth.engine.backends.reference.stepper import ReferenceStepper
 from sheafsynth.engine.ir import voicing as V
 

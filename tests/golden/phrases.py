@@ -29,7 +29,7 @@ FRAME = 2048   # samples per RMS fingerprint frame
 
 def _imports():
     from sheafsynth.engine.instrument import Instrument
-    from sheafsynth.engine.preset.document import factory_presets, load_preset
+    from sheafsynth.engine.preset import factory_presets, load_preset
     from sheafsynth.host.offline.render import render_midi, render_note
     return Instrument, factory_presets, load_preset, render_midi, render_note
 

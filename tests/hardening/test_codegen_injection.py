@@ -26,7 +26,7 @@ from sheafsynth.engine.backends.c import build
 from sheafsynth.engine.backends.c.emit import generate
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.lower import lower
-from sheafsynth.engine.preset.document import load_preset
+from sheafsynth.engine.preset import load_preset
 
 FRAGMENTS = [
     # C

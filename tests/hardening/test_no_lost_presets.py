@@ -85,7 +85,7 @@ if mode.startswith("point:"):
     save_user_preset(version(2), "@NAME@")
     print("finished", flush=True)
 else:
-    from sheafsynth.engine.preset.document import load_preset
+    from sheafsynth.engine.preset import load_preset
     load_preset(version(0))            # warm up: the first validation builds the schema validator
     print("ready", flush=True)
     k = 2
@@ -99,7 +99,7 @@ POINTS = ["after-mkstemp", "after-chmod", "mid-write", "after-write", "after-fil
 
 
 def _base_doc() -> dict:
-    from tests.engine.test_preset import BASE
+    from tests.engine.preset.test_preset import BASE
 
     return json.loads(json.dumps(BASE))
 
@@ -119,7 +119,7 @@ def _child(user_dir: Path, mode: str) -> subprocess.Popen:
 
 def _check_whole(user_dir: Path, allowed: set[int] | None) -> int:
     """The preset file is one complete version (returns its number); the bank lists it cleanly."""
-    from sheafsynth.engine.preset.document import load_preset
+    from sheafsynth.engine.preset import load_preset
     from sheafsynth.host import bank
 
     path = user_dir / f"{NAME}.json"
@@ -174,7 +174,7 @@ def test_kill_at_random_moments_while_saving_repeatedly(seeded_user_dir):
 def test_a_later_save_sweeps_the_temp_files_killed_saves_left(seeded_user_dir):
     """Killed saves leave hidden temp files; the next save of that preset removes
     the stale ones (untouched for engine.preset.document.STALE_TEMP_S) and nothing else."""
-    from sheafsynth.engine.preset.document import STALE_TEMP_S, sweep_stale_temps
+    from sheafsynth.engine.preset import STALE_TEMP_S, sweep_stale_temps
     from sheafsynth.host.bank import save_user_preset
 
     d = seeded_user_dir

@@ -39,8 +39,9 @@ from hypothesis import strategies as st
 
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.ir.lower import LIMITER_CEILING
-from sheafsynth.engine.preset.document import factory_presets, load_preset
-from tests.engine.test_preset import BASE, MALFORMED, mutate
+from sheafsynth.engine.ir.validate import load_checked
+from sheafsynth.engine.preset import factory_presets
+from tests.engine.preset.test_preset import BASE, MALFORMED, mutate
 from tests.hardening.conftest import fuzz_examples
 
 CASE_LIMIT_S = 30.0          # hang guard per case (typical case: a few ms)
@@ -399,7 +400,7 @@ def _check_one(doc, check_preset_error, time_limit, source: str):
     COUNTS[source] += 1
     with time_limit(CASE_LIMIT_S, f"validating a {source} preset"):
         try:
-            preset = load_preset(doc)
+            preset = load_checked(doc)
         except PresetError as e:
             check_preset_error(e, doc if isinstance(doc, dict) else None)
             COUNTS["refused"] += 1
@@ -436,7 +437,7 @@ def test_corrupted_text_loads_or_names_a_path(data, check_preset_error, time_lim
             doc = None
         for source in ([target] + ([data.decode("utf-8")] if data.lstrip().startswith(b"{") and _utf8(data) else [])):
             try:
-                load_preset(source)
+                load_checked(source)
                 COUNTS["valid"] += 1
             except PresetError as e:
                 check_preset_error(e, doc if isinstance(doc, dict) else None, sources=(str(target), "<text>"))
@@ -479,7 +480,7 @@ def test_pathological_documents_are_refused_quickly(check_preset_error, time_lim
     for doc, where in cases:
         with time_limit(20.0, f"refusing a document ({where})"):
             with pytest.raises(PresetError) as info:
-                load_preset(doc)
+                load_checked(doc)
         check_preset_error(info.value, doc if isinstance(doc, dict) else None)
         assert info.value.path.startswith(where), str(info.value)
 

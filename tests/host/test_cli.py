@@ -130,7 +130,7 @@ def test_presets_lists_factory_and_user(user_dir, capsys):
 
 
 def test_demo_renders_every_factory_preset(tmp_path):
-    from sheafsynth.engine.preset.document import factory_presets
+    from sheafsynth.engine.preset import factory_presets
 
     r = run("demo", "--out-dir", str(tmp_path / "demo"))
     assert r.returncode == 0, r.stderr

@@ -17,7 +17,7 @@ import pytest
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.ir.lower import lower
-from sheafsynth.engine.preset.document import ControlSpec, load_preset, parse_preset
+from sheafsynth.engine.preset import ControlSpec, load_preset, parse_preset
 from sheafsynth.host.controls import CURVES, MidiTranslator, curve_value
 from sheafsynth.host.live.play import controls_doc
 

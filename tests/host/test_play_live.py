@@ -164,7 +164,7 @@ def portaudio_closed_here():
 def check_once(path: Path) -> None:
     """What `sheafsynth check` does for a user preset: analyse it into the shared cache."""
     from sheafsynth.engine.analysis import report as analysis
-    from sheafsynth.engine.preset.document import load_preset
+    from sheafsynth.engine.preset import load_preset
 
     analysis.check(load_preset(path))
 
@@ -258,7 +258,7 @@ def test_session_counts_every_message(main_session):
 
 def test_learn_binds_and_save_as_writes_a_user_preset(main_session):
     from sheafsynth.engine.locations import FACTORY_DIR
-    from sheafsynth.engine.preset.document import load_preset
+    from sheafsynth.engine.preset import load_preset
 
     rep = main_session["rep"]
     assert rep["learned"] == [{"preset": "porch-pluck", "cc": 21, "parameter": "decay"}]

@@ -16,7 +16,7 @@ import pytest
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.locations import FACTORY_DIR
-from sheafsynth.engine.preset.document import load_preset
+from sheafsynth.engine.preset import load_preset
 from sheafsynth.host.controls import MidiTranslator
 
 POLY = 4

@@ -10,7 +10,9 @@ import pytest
 
 from sheafsynth.engine.model.cells import CELL_KINDS
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.preset.document import SCHEMA_PATH, factory_presets, load_preset, save_preset
+from sheafsynth.engine.ir.validate import check_preset, load_checked
+from sheafsynth.engine.model.sheaf import sheaf_of
+from sheafsynth.engine.preset import SCHEMA_PATH, factory_presets, load_preset, parse_preset, save_preset
 
 BASE = {
     "format": "sheafsynth-preset", "version": 1, "name": "test-string",
@@ -40,9 +42,9 @@ def mutate(fn):
 
 
 def test_base_preset_loads():
-    p = load_preset(BASE)
+    p = load_checked(BASE)
     assert p.name == "test-string"
-    assert [c.name for c in p.sheaf.cells] == ["loop", "damp", "tune"]
+    assert [c.name for c in sheaf_of(p).cells] == ["loop", "damp", "tune"]
 
 
 def test_design_example_keys_load():
@@ -53,7 +55,7 @@ def test_design_example_keys_load():
         "controls": [{"cc": 74, "parameter": "bright"}, {"cc": 1, "parameter": "decay", "curve": "exp"},
                      {"source": "pitchbend", "range_semitones": 2}],
         "release": {"decay": 0.95}}))
-    p = load_preset(doc)
+    p = load_checked(doc)
     assert p.release_decay == 0.95
     assert p.controls[2].range_semitones == 2
 
@@ -127,7 +129,7 @@ MALFORMED = [
 @pytest.mark.parametrize("case,fn,path,words", MALFORMED, ids=[m[0] for m in MALFORMED])
 def test_malformed_preset_names_the_path(case, fn, path, words):
     with pytest.raises(PresetError) as info:
-        load_preset(mutate(fn))
+        load_checked(mutate(fn))
     msg = str(info.value)
     assert msg.startswith(path), msg
     assert words in msg, msg
@@ -139,7 +141,7 @@ def test_at_least_twenty_distinct_malformed_cases():
 
 def test_bad_json_names_line_and_column(tmp_path):
     with pytest.raises(PresetError) as info:
-        load_preset(_bad_json(tmp_path))
+        load_checked(_bad_json(tmp_path))
     assert "line 1 column" in str(info.value)
     assert str(tmp_path / "bad.json") in str(info.value)
 
@@ -148,13 +150,13 @@ def test_non_finite_numbers_are_refused(tmp_path):
     f = tmp_path / "nan.json"
     f.write_text(json.dumps(BASE).replace('"value": 0.99', '"value": NaN'))
     with pytest.raises(PresetError) as info:
-        load_preset(f)
+        load_checked(f)
     assert "non-finite" in str(info.value)
 
 
 def test_missing_file_is_a_preset_error(tmp_path):
     with pytest.raises(PresetError) as info:
-        load_preset(tmp_path / "nope.json")
+        load_checked(tmp_path / "nope.json")
     assert "no such preset file" in str(info.value)
 
 
@@ -169,7 +171,7 @@ def test_every_factory_preset_loads():
     paths = factory_presets()
     assert len(paths) >= 3
     for p in paths:
-        preset = load_preset(p)
+        preset = load_checked(p)
         assert preset.about, f"{p.name} needs an about line"
         assert any(c.source == "cc" for c in preset.controls), f"{p.name} maps no CC"
 
@@ -187,8 +189,38 @@ def test_save_is_atomic_and_round_trips(tmp_path):
 
 
 def test_with_values_refuses_out_of_range():
-    p = load_preset(BASE)
+    p = load_checked(BASE)
     assert p.with_values({"bright": 0.25}).parameters["bright"].value == 0.25
     with pytest.raises(PresetError) as info:
         p.with_values({"bright": 3.0})
     assert "parameters.bright.value" in str(info.value)
+
+
+def test_preset_layer_alone_leaves_network_checks_to_validate():
+    """load_preset checks the document; the wiring is checked one layer up (load_checked)."""
+    doc = mutate(lambda d: d["wires"].append({"from": "loop", "to": "nowhere"}))
+    assert load_preset(doc).name == "test-string"
+    with pytest.raises(PresetError) as info:
+        load_checked(doc)
+    assert str(info.value).startswith("wires[")
+
+
+def test_save_with_network_check_refuses_a_bad_network(tmp_path):
+    target = tmp_path / "mine.json"
+    doc = mutate(lambda d: d["wires"].append({"from": "loop", "to": "nowhere"}))
+    with pytest.raises(PresetError):
+        save_preset(doc, target, check=check_preset)
+    assert not target.exists()
+
+
+def test_with_values_equals_parsing_the_changed_document():
+    p = load_checked(BASE)
+    doc = copy.deepcopy(BASE)
+    doc["parameters"]["bright"]["value"] = 0.25
+    assert p.with_values({"bright": 0.25}) == parse_preset(doc)
+
+
+def test_sheaf_of_builds_once_per_preset_object():
+    p = load_preset(BASE)
+    assert sheaf_of(p) is sheaf_of(p)
+    assert sheaf_of(load_preset(BASE)) is not sheaf_of(p)
