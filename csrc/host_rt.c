@@ -398,13 +398,20 @@ int ss_host_process(ss_host *h, float *out, unsigned long frames, int64_t now_ns
     int n_ev, ei = 0, ch, channels;
     float ceiling, peak = 0.0f;
     double rate;
+#ifdef SS_HOST_HAVE_MXCSR
+    unsigned int csr_saved;
+#endif
 
     if (!h || !out) return paAbort;
     t0 = ss_host_now_ns();
     cpu0 = ss_host_thread_cpu_ns_();
     ss_host_thread_switches_(&vol0, &invol0);
 #ifdef SS_HOST_HAVE_MXCSR
-    _mm_setcsr(_mm_getcsr() | 0x8040);             /* flush-to-zero, denormals-are-zero */
+    /* flush-to-zero, denormals-are-zero for this call; the caller's mode comes
+       back on return (a process() run by hand on the main thread must not
+       leave Python's floats flushed) */
+    csr_saved = _mm_getcsr();
+    _mm_setcsr(csr_saved | 0x8040);
 #endif
     w = &h->work;
     channels = h->channels;
@@ -554,6 +561,9 @@ publish:
         memcpy(&h->pub, w, sizeof(*w));
         __atomic_store_n(&h->seq, s + 2, __ATOMIC_RELEASE);
     }
+#ifdef SS_HOST_HAVE_MXCSR
+    _mm_setcsr(csr_saved);
+#endif
     return paContinue;
 }
 

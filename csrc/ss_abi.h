@@ -7,13 +7,19 @@
  * engine both talk to kernels only through this header, so a kernel built
  * from any preset can be driven by any client.
  *
+ * The part between CDEF-BEGIN and CDEF-END is plain declarations that the
+ * Python side (engine/backends/c/abi.py) reads as its cffi cdef and from
+ * which it takes the event and status codes: this file is their one source.
+ *
  * Real-time rules: nothing declared here allocates, locks, logs or prints.
  */
 #ifndef SS_ABI_H
 #define SS_ABI_H
 
 #include <stdint.h>
+#include <stddef.h>
 
+/* CDEF-BEGIN */
 /* Event types.  Offsets are in samples from the start of the block. */
 #define SS_EV_NOTE_ON        1  /* a = MIDI note 0..127, b = velocity 1..127 */
 #define SS_EV_NOTE_OFF       2  /* a = MIDI note */
@@ -56,5 +62,18 @@ typedef int (*ss_render_fn)(void *state, const ss_event *events, int n_events,
 #define SS_OK              0
 #define SS_ERR_FRAMES     -1  /* frames <= 0 or > max_block */
 #define SS_ERR_STATE      -2  /* state pointer is NULL or not prepared */
+
+/* Entry points every kernel module exports (csrc/ss_kernel_pool.h).  All but
+ * sheafsynth_render are for the main thread; sheafsynth_render is real-time
+ * safe and restores the caller's floating-point mode (FTZ/DAZ) on return. */
+size_t sheafsynth_state_size(void);
+int sheafsynth_init(void *state, uint32_t seed);
+int sheafsynth_render(void *state, const ss_event *events, int n_events, float *out, int frames);
+int sheafsynth_set_limiter(void *state, int on);
+int sheafsynth_set_param_now(void *state, int index, float value);
+int sheafsynth_set_ramp(void *state, int index, int samples);
+float sheafsynth_get_param(void *state, int index);
+int sheafsynth_voices(void *state, int32_t *status, int32_t *note, int n);
+/* CDEF-END */
 
 #endif /* SS_ABI_H */

@@ -19,13 +19,17 @@ from typing import Iterable
 
 import numpy as np
 
+from sheafsynth.engine.backends.c.abi import CDEF
 from sheafsynth.engine.backends.c.build import CompiledModule, compile_module
-from sheafsynth.engine.backends.c.emit import CDEF, generate
+from sheafsynth.engine.backends.c.emit import generate
 from sheafsynth.engine.errors import PresetError, SheafsynthError
-from sheafsynth.engine.ir.lower import ParamInfo, StepProgram, lower
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.ir.program import ParamInfo, StepProgram
 from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.preset import Preset
 from sheafsynth.engine.ir import voicing as V
+
+__all__ = ["Instrument", "KernelHandle", "render_notes", "EVENT_CAPACITY", "RATES"]
 
 EVENT_CAPACITY = 4096
 RATES = (22050, 32000, 44100, 48000, 88200, 96000, 192000)
@@ -142,7 +146,7 @@ class Instrument:
         self._events.append((int(offset), typ, int(a), int(b), float(value)))
 
     def push_event(self, offset: int, typ: int, a: int = 0, b: int = 0, value: float = 0.0) -> None:
-        """Queue a raw kernel event (types in engine.ir.voicing / csrc/ss_abi.h)."""
+        """Queue a raw kernel event (types ``EV_*`` in engine.ir.voicing, carried to C by csrc/ss_abi.h)."""
         self._push(offset, typ, a, b, value)
 
     def note_on(self, note: int, velocity: int = 100, offset: int = 0) -> None:

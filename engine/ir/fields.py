@@ -1,19 +1,19 @@
-"""Field blocks of the step program: layout, coefficients, reference step, assembly.
+"""Field blocks of the step program: types, layout, lowering, update coefficients.
 
 A field cell (engine.model.cells.field) lowers to a :class:`FieldProgram` attached
-to its Block (``Block.field``, kind ``"field"``).  The three consumers of the
-step program read it:
+to its Block (``Block.field``, kind ``"field"``).  This module holds the
+types and the rules the update obeys (the coefficient arithmetic below);
+the three consumers of the step program read it:
 
-* sheafsynth.engine.backends.c.emit_field (called from sheafsynth.engine.backends.c.emit) prints the C update: a
+* engine.backends.c.emitters.field prints the C update: a
   *stencil* over a padded array for regular generators whose restriction
   maps are identities except a scalar sign on the seam (grid none / torus /
   cylinder / mobius, path none / ring, stalk 1), and a *CSR* loop over the
   sheaf Laplacian (and bending operator) otherwise (explicit complexes,
   rotations, edge twists, stalk > 1);
-* engine.backends.reference.stepper steps the same update with the sparse operators of
-  engine.model.complexes in double precision (:func:`reference_step`);
-* engine.analysis.assemble places states [u; u_prev] in the sparse closed-loop A
-  (:func:`assemble_block`).
+* engine.backends.reference.field steps the same update with the sparse operators of
+  engine.model.complexes in double precision (the one Python implementation);
+* engine.analysis.assemble_field places states [u; u_prev] in the sparse closed-loop A.
 
 Per sample a field behaves like a cell without feedthrough: step 2 reads
 the pickups from u, step 4 gathers the strike inputs, step 5 advances
@@ -55,24 +55,27 @@ from __future__ import annotations
 import itertools
 import math
 from dataclasses import dataclass, field
-from typing import Mapping
+from typing import Any, Mapping
 
 import numpy as np
 import scipy.sparse as sp
 
+from sheafsynth.engine.errors import BuildError
+from sheafsynth.engine.ir.program import StepProgram, note_hz
+from sheafsynth.engine.model.cells.field_model import FieldModel, Point, f32
+from sheafsynth.engine.model.cells.field_stability import check_stability
 from sheafsynth.engine.preset.affine import Affine
-from sheafsynth.engine.model.cells.field import FieldModel, Point, check_stability, f32
 
-A4_HZ, MIDI_A4 = 440.0, 69
+__all__ = [
+    "DEFAULT_BEND", "DOUBLE_DOFS", "Stencil", "FieldProgram", "stencil_operators", "lower_field",
+    "bend_range", "finish_fields", "k2_raw", "kappa2", "release_rho", "coefficients",
+]
+
 DEFAULT_BEND = 2.0      # semitones: MIDI's default pitch-bend range (MMA)
 DOUBLE_DOFS = 512       # fields up to this many DOFs keep double-precision state in the kernel
 # Fields with drift modes (z = 1: a free plate's translation, a free bar's rigid
 # motions) keep double-precision state at any size: a z = 1 mode sums float32
 # rounding without bound, which the reference (double) does not.
-
-
-def _note_hz(note: float) -> float:
-    return A4_HZ * 2.0 ** ((note - MIDI_A4) / 12.0)
 
 
 @dataclass(frozen=True)
@@ -160,7 +163,7 @@ class FieldProgram:
 
     def operator_matrix(self) -> sp.csr_matrix:
         """The Laplacian the kernel applies, rebuilt from its layout (kept-DOF order)."""
-        if self.layout == "stencil":
+        if self.layout == "stencil" and self.stencil is not None:
             return stencil_operators(self.stencil)[0]
         return self.L
 
@@ -184,9 +187,17 @@ def _seam_sign(model: FieldModel, axis: int) -> float | None:
     return c
 
 
+def _grid_shape(model: FieldModel) -> tuple[int, ...]:
+    """Shape of a generated (grid or path) complex; every generated complex has one."""
+    shape = model.complex.shape
+    if shape is None:
+        raise BuildError("internal: a generated complex without a shape")
+    return shape
+
+
 def _stencil_for(model: FieldModel) -> Stencil | None:
     cx, sh = model.complex, model.sheaf
-    if cx.kind not in ("grid", "path") or sh.stalk != 1:
+    if cx.kind not in ("grid", "path") or sh.stalk != 1 or cx.seam is None:
         return None
     plain = cx.seam < 0
     if not (np.all(sh.tail_maps[plain] == 1.0) and np.all(sh.head_maps[plain] == 1.0)):
@@ -195,7 +206,7 @@ def _stencil_for(model: FieldModel) -> Stencil | None:
     open_rule = "clamp" if fixed else "mirror"
     off = 1 if fixed else 0
     if cx.kind == "path":
-        n = cx.shape[0]
+        n = _grid_shape(model)[0]
         ring = cx.wrapped[0]
         c = _seam_sign(model, 0)
         if c is None:
@@ -204,7 +215,7 @@ def _stencil_for(model: FieldModel) -> Stencil | None:
         st = Stencil(1, 1, n - 2 * o, None, "periodic" if ring else open_rule, 1.0, c, 0, o,
                      stiff_zero_ends=(not ring and not fixed))
     else:
-        m, n = cx.shape
+        m, n = _grid_shape(model)
         w0, w1 = cx.wrapped
         c0 = _seam_sign(model, 0) if w0 else 1.0
         c1 = _seam_sign(model, 1) if w1 else 1.0
@@ -286,7 +297,7 @@ def lower_field(cell) -> FieldProgram:
         if cx.kind == "path":
             ii, jj = np.zeros(kept.size, dtype=np.int64), kept
         else:
-            ii, jj = np.divmod(kept, cx.shape[1])
+            ii, jj = np.divmod(kept, _grid_shape(model)[1])
         for k, (i, j) in enumerate(zip(ii, jj)):
             storage[k] = st.index(int(i) - st.off0, int(j) - st.off1)
         vbase[kept] = storage
@@ -302,26 +313,6 @@ def lower_field(cell) -> FieldProgram:
                         ctype=_ctype(model))
 
 
-def _seam_scale_table(fp: FieldProgram):
-    """Weight factors for points interpolated across a seam (as position_weights applies them)."""
-    from sheafsynth.engine.model.complexes import _seam_scale
-
-    cx, sh = fp.model.complex, fp.model.sheaf
-    if cx.kind == "path":
-        if not cx.wrapped[0]:
-            return None, None
-        return [_seam_scale(sh, cx.n_edges - 1)], None
-    m, n = cx.shape
-    sc0 = sc1 = None
-    if cx.wrapped[0]:
-        sc0 = [_seam_scale(sh, int(np.flatnonzero((cx.seam == 0) & (cx.edges[:, 0] == (m - 1) * n + j))[0]))
-               for j in range(n)]
-    if cx.wrapped[1]:
-        sc1 = [_seam_scale(sh, int(np.flatnonzero((cx.seam == 1) & (cx.edges[:, 0] == i * n + n - 1))[0]))
-               for i in range(m)]
-    return sc0, sc1
-
-
 def _ctype(model: FieldModel) -> str:
     if model.precision != "auto":
         return "double" if model.precision == "double" else "float"
@@ -334,7 +325,7 @@ def bend_range(preset) -> float:
     return max(ranges) if ranges else DEFAULT_BEND
 
 
-def finish_fields(prog, preset) -> None:
+def finish_fields(prog: StepProgram, preset: Any) -> None:
     """Pitch constants and the tuned stability check (needs the sample rate)."""
     for b in prog.blocks:
         fp: FieldProgram | None = getattr(b, "field", None)
@@ -348,13 +339,13 @@ def finish_fields(prog, preset) -> None:
         for corner in itertools.product(*[(preset.parameters[s].lo, preset.parameters[s].hi) for s in syms]):
             env = {p.name: p.value for p in prog.params}
             env.update(zip(syms, corner))
-            k2 = max(k2, _k2_raw(fp, top, prog.rate, env))
+            k2 = max(k2, k2_raw(fp, top, prog.rate, env))
         fp.k2_max = k2
         note = f"note {top:g} (highest playable {prog.notes[1]} + bend {bend:g}) at {prog.rate:g} Hz"
         check_stability(fp.model, preset.parameters, fp.k2_max, note)
 
 
-def _k2_raw(fp: FieldProgram, pitch: float, rate: float, env: Mapping[str, float]) -> float:
+def k2_raw(fp: FieldProgram, pitch: float, rate: float, env: Mapping[str, float]) -> float:
     """k2 putting the tuned mode's damped root at angle w = 2 pi f / fs.
 
     The mode (K-eigenvalue q, L-eigenvalue p1) has roots of
@@ -362,7 +353,9 @@ def _k2_raw(fp: FieldProgram, pitch: float, rate: float, env: Mapping[str, float
     q = 2 - e p1 - 2 cos(w) sqrt((1+s)(1-s-e p1))  (lossless: 4 sin^2(w/2)).
     """
     t = fp.model.tune
-    f = _note_hz(pitch) * t.ratio * 2.0 ** (t.cents / 1200.0)
+    if t is None:
+        raise BuildError("internal: k2_raw of an untuned field")
+    f = note_hz(pitch) * t.ratio * 2.0 ** (t.cents / 1200.0)
     w = 2.0 * math.pi * f / rate
     sg = f32(fp.loss.value(env))
     et = f32(fp.hf_loss.value(env)) if fp.uses_eta else 0.0
@@ -375,7 +368,7 @@ def kappa2(fp: FieldProgram, pitch: float, rate: float, env: Mapping[str, float]
     """The per-voice pitch factor k2 (float32), as the kernel's tuning computes it."""
     if not fp.tuned:
         return 1.0
-    return f32(min(_k2_raw(fp, pitch, rate, env), fp.k2_max))
+    return f32(min(k2_raw(fp, pitch, rate, env), fp.k2_max))
 
 
 def release_rho(fp: FieldProgram, period: float, decay: float) -> float:
@@ -394,73 +387,3 @@ def coefficients(fp: FieldProgram, env: Mapping[str, float], k2: float, rho: flo
     den = 1.0 / (1.0 + sg)
     return {"cv": f32(rho * (1.0 - sg) * den), "cl": f32(rho * k2 * lam * lam * den),
             "ce": f32(rho * et * den), "cf": f32(rho * k2 * bt * bt * den), "cr": f32(rho - 1.0)}
-
-
-# --------------------------------------------------------------------------
-# reference stepper (engine.backends.reference.stepper)
-
-@dataclass
-class FieldState:
-    """One voice's field state over the kept DOFs (double): u and v = u - u_prev."""
-
-    u: np.ndarray
-    v: np.ndarray
-    k2: float = 1.0
-    rho: float = 1.0
-
-    @property
-    def u_prev(self) -> np.ndarray:
-        return self.u - self.v
-
-
-def new_state(fp: FieldProgram) -> FieldState:
-    return FieldState(np.zeros(fp.n_dof), np.zeros(fp.n_dof))
-
-
-def reference_read(fp: FieldProgram, st: FieldState, env: Mapping[str, float], port: int) -> float:
-    """Pickup ``port`` read from the current u."""
-    return float(fp.weights(fp.outputs[port], env) @ st.u)
-
-
-def reference_step(fp: FieldProgram, st: FieldState, env: Mapping[str, float], inputs) -> None:
-    """Advance one sample; ``inputs`` are the gathered strike samples per input port."""
-    k = coefficients(fp, env, st.k2, st.rho)
-    u, v = st.u, st.v
-    if fp.dynamics == "diffusion":
-        dv = k["cd0"] * u - k["cd1"] * (fp.L @ u)
-    else:
-        dv = k["cv"] * v - fp.L @ (k["cl"] * u + k["ce"] * v) + k["cr"] * u
-        if fp.uses_stiff:
-            dv = dv - k["cf"] * (fp.S @ u)
-    for port, x in enumerate(inputs):
-        if x != 0.0:
-            dv = dv + fp.weights(fp.inputs[port], env) * x
-    st.v = dv
-    st.u = u + dv
-
-
-# --------------------------------------------------------------------------
-# assembly (engine.analysis.assemble): states [u; u_prev]
-
-def assemble_block(fp: FieldProgram, env: Mapping[str, float], pitch: float, rate: float):
-    """(A block 2n x 2n, B block 2n x n_in, C block n_out x 2n) of a held voice."""
-    n = fp.n_dof
-    k = coefficients(fp, env, kappa2(fp, pitch, rate, env), 1.0)
-    eye = sp.identity(n, format="csr")
-    if fp.dynamics == "diffusion":
-        a_uu = (1.0 + k["cd0"]) * eye - k["cd1"] * fp.L
-        a_up = sp.csr_matrix((n, n))
-    else:
-        # u+ = u + cv (u - p) - L (cl u + ce (u - p)) - cf S u + cr u
-        a_uu = (1.0 + k["cv"] + k["cr"]) * eye - (k["cl"] + k["ce"]) * fp.L
-        if fp.uses_stiff:
-            a_uu = a_uu - k["cf"] * fp.S
-        a_up = -k["cv"] * eye + k["ce"] * fp.L
-    A = sp.bmat([[a_uu, a_up], [eye, None]], format="csr")
-    B = np.zeros((2 * n, len(fp.inputs)))
-    for j, pt in enumerate(fp.inputs):
-        B[:n, j] = fp.weights(pt, env)
-    C = np.zeros((len(fp.outputs), 2 * n))
-    for r, pt in enumerate(fp.outputs):
-        C[r, :n] = fp.weights(pt, env)
-    return A, sp.csr_matrix(B), sp.csr_matrix(C)

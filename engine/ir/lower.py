@@ -1,176 +1,27 @@
-"""Lower a network sheaf to the step program (the IR).
+"""Lower a validated preset's network sheaf to the step program (engine.ir.program).
 
-The step program is the one description of a voice's per-sample update that
-three consumers read (DESIGN §1): the C generator (engine.backends.c.emit), the NumPy
-reference stepper (engine.backends.reference.stepper) and the sparse assembly for analysis
-(engine.analysis.assemble).  Nothing downstream looks at the preset again.
-
-Per sample, every consumer performs the same five steps:
-
-1. ``sig[0]`` = the excitation sample;
-2. every cell without feedthrough produces its output from its state
-   (a delay reads its ring buffer ``len`` samples back);
-3. cells with feedthrough, in ``order``, gather their inputs and produce
-   ``y = C s + D u``;
-4. the remaining cells gather their inputs;
-5. states advance: ``s = A s + B u``; delays write ``u * relgain`` into the
-   ring; the voice output is the sum of the ``out`` terms.
-
-Signals are numbered: 0 is the excitation, then each cell's output ports.
-Each input is a list of ``(signal, Affine gain)`` terms.
+:func:`lower` numbers the signals, turns every wire's gain matrix into
+input terms, lowers each cell to a block (linear, delay or field), sizes
+the delay rings (power-of-two lengths, samples), finds the tuning loop
+through every pitch-tracking delay and refuses presets whose voices would
+need more than MAX_VOICE_MEMORY bytes.  The types and the per-sample rules
+live in engine.ir.program; field blocks are lowered by engine.ir.fields.
 """
 
 from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import dataclass, field
 
-from sheafsynth.engine.preset.affine import Affine, AffineMatrix
-from sheafsynth.engine.model.cells import CellModel
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.model.sheaf import EXCITE, OUT, NetworkSheaf, evaluation_order, sheaf_of
+from sheafsynth.engine.ir.fields import finish_fields, lower_field
+from sheafsynth.engine.ir.program import (KIND_DELAY, KIND_FIELD, KIND_LINEAR, MAX_BEND_SEMITONES, Block,
+                                          LoopStep, ParamInfo, StepProgram, Term, TuningLoop, note_hz)
+from sheafsynth.engine.model.cells import CellModel
+from sheafsynth.engine.model.sheaf import EXCITE, OUT, NetworkSheaf, Wire, evaluation_order, sheaf_of
+from sheafsynth.engine.preset.affine import Affine, AffineMatrix
 
-MIDI_A4 = 69
-A4_HZ = 440.0
-RAMP_FADE_S = 0.003        # steal / all-sound-off fade (common practice: a few ms)
-LIMITER_CEILING = 0.8912509381337456   # -1 dBFS
-LIMITER_RELEASE_S = 0.05
-GUARD_LIMIT = 1.0e4        # a voice sample beyond this is a runaway
-SILENCE_RELEASED = 1.0e-5  # -100 dBFS: a released voice below this for a block is freed
-SILENCE_HELD = 1.0e-6      # a held voice this quiet for HELD_QUIET_S is freed
-HELD_QUIET_S = 0.5
-MAX_BEND_SEMITONES = 24.0
-
-
-@dataclass(frozen=True)
-class ParamInfo:
-    name: str
-    index: int
-    value: float
-    lo: float
-    hi: float
-    unit: str
-    ramp_s: float               # every change is a linear ramp of this length (s)
-
-    @property
-    def slope_per_s(self) -> float:
-        """Largest change per second the kernel's ramp can make (a full-range jump)."""
-        return (self.hi - self.lo) / self.ramp_s
-
-
-@dataclass(frozen=True)
-class Term:
-    signal: int
-    gain: Affine
-
-
-@dataclass
-class Block:
-    """One cell in the step program."""
-
-    index: int
-    name: str
-    kind: str
-    n_in: int
-    n_out: int
-    out_signal: int                      # first output signal index
-    inputs: list[list[Term]]             # per input port
-    # linear cells
-    A: AffineMatrix | None = None
-    B: AffineMatrix | None = None
-    C: AffineMatrix | None = None
-    D: AffineMatrix | None = None
-    # delay cells
-    delay_length: int | None = None      # fixed length, or None when pitch-tracking
-    pitch: bool = False
-    pitch_ratio: float = 1.0
-    pitch_cents: float = 0.0
-    tune_symbol: str | None = None       # "@tune0" for a pitch-fraction allpass
-    loop: int | None = None              # tuning loop this delay / allpass belongs to
-    field: object = None                 # field cells: engine.ir.fields.FieldProgram
-
-    @property
-    def is_delay(self) -> bool:
-        return self.kind == "delay"
-
-    @property
-    def is_field(self) -> bool:
-        return self.field is not None
-
-    @property
-    def n_state(self) -> int:
-        """Small dense states (delays and fields keep theirs in buffers)."""
-        return 0 if self.is_delay or self.is_field else self.A.rows
-
-    @property
-    def feedthrough(self) -> bool:
-        return not self.is_delay and not self.is_field and not self.D.is_zero
-
-
-@dataclass(frozen=True)
-class LoopStep:
-    """One cell of a tuning loop, entered at ``in_port`` and left at ``out_port``."""
-
-    block: int
-    in_port: int
-    out_port: int
-
-
-@dataclass
-class TuningLoop:
-    """The shortest cycle through a pitch-tracking delay.
-
-    ``steps`` lists the other cells on the cycle and ``gains`` the scalar
-    wire gains along it; their phase delay at the note frequency is
-    subtracted from the delay length (plus the allpass's fraction) so the
-    loop rings at the played pitch.
-    """
-
-    index: int
-    delay: int
-    tuner: int | None
-    steps: list[LoopStep]
-    gains: list[Affine]
-
-
-@dataclass
-class StepProgram:
-    name: str
-    rate: float
-    polyphony: int
-    max_block: int
-    notes: tuple[int, int]
-    params: list[ParamInfo]
-    blocks: list[Block]
-    order: list[int]                     # feedthrough blocks in evaluation order
-    out_terms: list[Term]
-    n_signals: int
-    loops: list[TuningLoop]
-    excitation: dict
-    release_decay: float
-    ring_size: dict[int, int] = field(default_factory=dict)   # delay block -> ring length (power of 2)
-    limiter_ceiling: float = LIMITER_CEILING
-
-    @property
-    def param_index(self) -> dict[str, int]:
-        return {p.name: p.index for p in self.params}
-
-    def block_named(self, name: str) -> Block:
-        for b in self.blocks:
-            if b.name == name:
-                return b
-        raise KeyError(name)
-
-    def ramp_samples(self) -> list[int]:
-        """Length of every parameter's ramp in samples (at least 1)."""
-        return [max(1, int(round(p.ramp_s * self.rate))) for p in self.params]
-
-
-def note_hz(note: float) -> float:
-    """MIDI note to Hz: 440 * 2^((n - 69)/12) (MIDI 1.0 numbering, ISO 16 A4)."""
-    return A4_HZ * 2.0 ** ((note - MIDI_A4) / 12.0)
-
+__all__ = ["lower", "MAX_VOICE_MEMORY"]
 
 def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int | None = None,
           min_ramp_s: dict[str, float] | None = None) -> StepProgram:
@@ -225,22 +76,20 @@ def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int |
             prog.ring_size[b.index] = _ring_size(b, prog)
     _check_voice_memory(prog)
     if any(b.is_field for b in blocks):
-        from sheafsynth.engine.ir.fields import finish_fields
-
         finish_fields(prog, preset)
     return prog
 
 
 def _block(i: int, c: CellModel, out_sig: int, inputs: list[list[Term]]) -> Block:
     if c.kind == "field":
-        from sheafsynth.engine.ir.fields import lower_field
-
-        return Block(i, c.name, "field", c.n_in, c.n_out, out_sig, inputs, field=lower_field(c))
+        return Block(i, c.name, KIND_FIELD, c.n_in, c.n_out, out_sig, inputs, field=lower_field(c),
+                     cell_kind=c.kind)
     if c.delay is not None:
         d = c.delay
-        return Block(i, c.name, "delay", 1, 1, out_sig, inputs, delay_length=d.length,
-                     pitch=d.pitch, pitch_ratio=d.ratio, pitch_cents=d.cents)
-    return Block(i, c.name, c.kind, c.n_in, c.n_out, out_sig, inputs, c.A, c.B, c.C, c.D)
+        return Block(i, c.name, KIND_DELAY, 1, 1, out_sig, inputs, delay_length=d.length,
+                     pitch=d.pitch, pitch_ratio=d.ratio, pitch_cents=d.cents, cell_kind=c.kind)
+    return Block(i, c.name, KIND_LINEAR, c.n_in, c.n_out, out_sig, inputs, c.A, c.B, c.C, c.D,
+                 cell_kind=c.kind)
 
 
 MAX_VOICE_MEMORY = 512 << 20   # bytes of delay lines and small states, all voices
@@ -261,7 +110,7 @@ def _ring_size(b: Block, prog: StepProgram) -> int:
         lowest = note_hz(prog.notes[0] - MAX_BEND_SEMITONES) * b.pitch_ratio * 2 ** (b.pitch_cents / 1200)
         need = int(math.ceil(prog.rate / lowest)) + 4
     else:
-        need = b.delay_length + 1
+        need = b.fixed_length() + 1
     return 1 << max(2, (need - 1).bit_length())
 
 
@@ -301,7 +150,7 @@ def _tuning_loops(sheaf: NetworkSheaf, blocks: list[Block]) -> list[TuningLoop]:
             tb.tune_symbol = sym
             tb.loop = k
             for old, new in (("@tune", sym), ("@tunec", f"@tunec{k}")):
-                tb.A, tb.B, tb.C, tb.D = (_rename(m, old, new) for m in (tb.A, tb.B, tb.C, tb.D))
+                tb.A, tb.B, tb.C, tb.D = (_rename(m, old, new) for m in tb.linear())
             tuners_used.add(tuner)
         loops.append(TuningLoop(k, b.index, tuner, steps, gains))
     for i, c in enumerate(sheaf.cells):
@@ -318,13 +167,13 @@ def _rename(m: AffineMatrix, old: str, new: str) -> AffineMatrix:
     return AffineMatrix(m.rows, m.cols, tuple(rows))
 
 
-def _shortest_cycle(sheaf: NetworkSheaf, start: int):
+def _shortest_cycle(sheaf: NetworkSheaf, start: int) -> list[Wire] | None:
     """Wires of the shortest directed cycle from ``start`` back to itself.
 
     Cycles through a field cell (a bridge) are couplings, not tuning loops.
     """
-    prev: dict[int, object] = {}
-    q = deque()
+    prev: dict[int, Wire] = {}
+    q: deque[int] = deque()
     for w in sheaf.wires:
         if w.src == start and w.dst >= 0 and sheaf.cells[w.dst].kind != "field":
             if w.dst == start:

@@ -22,7 +22,10 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from sheafsynth.engine.ir.lower import StepProgram, TuningLoop, note_hz
+from sheafsynth.engine.ir.program import Block, StepProgram, TuningLoop, note_hz
+
+__all__ = ["TAU_MIN", "KEEP_LO", "KEEP_HI", "block_response", "phase_delay", "allpass_coef", "loop_frequency",
+           "tune_loop", "tune_all", "env_from_values", "loop_slack"]
 
 TAU_MIN = 0.5   # allpass fraction range [0.5, 1.5) when a length is chosen
 KEEP_LO, KEEP_HI = 0.02, 1.98   # a knob may move the fraction this far before the length changes
@@ -34,13 +37,14 @@ def block_response(prog: StepProgram, bi: int, in_port: int, out_port: int,
     b = prog.blocks[bi]
     if b.is_delay:
         raise ValueError("delays are handled by their length")
-    d = b.D[out_port, in_port].value(env)
+    Am, Bm, Cm, Dm = b.linear()
+    d = Dm[out_port, in_port].value(env)
     k = b.n_state
     if k == 0:
         return complex(d)
-    A = b.A.value(env)
-    Bc = b.B.value(env)[:, in_port]
-    Cr = b.C.value(env)[out_port, :]
+    A = Am.value(env)
+    Bc = Bm.value(env)[:, in_port]
+    Cr = Cm.value(env)[out_port, :]
     z = cmath.exp(1j * omega)
     x = np.linalg.solve(z * np.eye(k) - A, Bc.astype(complex))
     return complex(d + Cr @ x)
@@ -57,6 +61,7 @@ def allpass_coef(tau: float, omega: float) -> float:
 
 
 def loop_frequency(prog: StepProgram, loop: TuningLoop, pitch: float) -> float:
+    """Frequency in Hz the loop must ring at for ``pitch`` (MIDI note + bend, semitones)."""
     b = prog.blocks[loop.delay]
     return note_hz(pitch) * b.pitch_ratio * 2.0 ** (b.pitch_cents / 1200.0)
 
@@ -81,7 +86,7 @@ def tune_loop(prog: StepProgram, loop: TuningLoop, pitch: float,
             continue
         blk = prog.blocks[st.block]
         if blk.is_delay:
-            rest += float(blk.delay_length)
+            rest += float(blk.fixed_length())
         else:
             rest += phase_delay(block_response(prog, st.block, st.in_port, st.out_port, env, omega), omega)
     for g in loop.gains:
@@ -106,9 +111,35 @@ def tune_loop(prog: StepProgram, loop: TuningLoop, pitch: float,
     return n, allpass_coef(tau, omega)
 
 
+def loop_slack(prog: StepProgram, b: Block) -> float:
+    """Upper bound of (pitch delay length) / period for the tuning loop through ``b``.
+
+    :func:`tune_loop`: length = period - rest, and rest loses at most half a
+    period per filter on the loop (a phase delay -arg H / w with |arg H| <= pi)
+    and per wire gain that can be negative; fixed delays only add to rest.
+    """
+    lp = prog.loops[b.loop] if b.loop is not None else None
+    if lp is None:
+        return 1.0
+    k = sum(1 for st in lp.steps if st.block != lp.tuner and not prog.blocks[st.block].is_delay)
+    rng = {p.name: (p.lo, p.hi) for p in prog.params}
+    for g in lp.gains:
+        lo = g.const
+        for sym, c in g.terms:
+            if sym not in rng:
+                lo = -1.0
+                break
+            lo += min(c * rng[sym][0], c * rng[sym][1])
+        if lo < 0.0:
+            k += 1
+    return 1.0 + 0.5 * k
+
+
 def tune_all(prog: StepProgram, pitch: float, env: Mapping[str, float]) -> list[tuple[int, float | None]]:
+    """:func:`tune_loop` for every loop of ``prog`` (fresh lengths)."""
     return [tune_loop(prog, lp, pitch, env) for lp in prog.loops]
 
 
 def env_from_values(prog: StepProgram, values: Sequence[float]) -> dict[str, float]:
+    """Parameter name -> value, from values indexed like ``prog.params``."""
     return {p.name: float(values[p.index]) for p in prog.params}

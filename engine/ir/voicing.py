@@ -13,11 +13,23 @@ its pending note at the next block.
 
 from __future__ import annotations
 
+__all__ = ["FREE", "HELD", "SUSTAINED", "RELEASED", "FADING", "STATUS_NAMES",
+           "EV_NOTE_ON", "EV_NOTE_OFF", "EV_PARAM", "EV_BEND", "EV_SUSTAIN", "EV_ALL_NOTES_OFF",
+           "EV_ALL_SOUND_OFF", "EV_RELEASE_ALL", "EVENT_CODES", "MASK32", "seed_voice", "xorshift32",
+           "noise_value", "fade_samples"]
+
 FREE, HELD, SUSTAINED, RELEASED, FADING = 0, 1, 2, 3, 4
 STATUS_NAMES = {FREE: "free", HELD: "held", SUSTAINED: "sustained", RELEASED: "released", FADING: "fading"}
 
+# Kernel event types: the IR owns the names and meanings; csrc/ss_abi.h
+# (SS_EV_<name>) carries the same codes to C, and engine.backends.c.abi
+# refuses to load if the two ever disagree.  Clients (instrument, host)
+# import these names from here.
 EV_NOTE_ON, EV_NOTE_OFF, EV_PARAM, EV_BEND, EV_SUSTAIN = 1, 2, 3, 4, 5
 EV_ALL_NOTES_OFF, EV_ALL_SOUND_OFF, EV_RELEASE_ALL = 6, 7, 8
+EVENT_CODES = {"NOTE_ON": EV_NOTE_ON, "NOTE_OFF": EV_NOTE_OFF, "PARAM": EV_PARAM, "BEND": EV_BEND,
+               "SUSTAIN": EV_SUSTAIN, "ALL_NOTES_OFF": EV_ALL_NOTES_OFF, "ALL_SOUND_OFF": EV_ALL_SOUND_OFF,
+               "RELEASE_ALL": EV_RELEASE_ALL}
 
 MASK32 = 0xFFFFFFFF
 
@@ -47,4 +59,5 @@ def noise_value(x: int) -> float:
 
 
 def fade_samples(rate: float, fade_s: float) -> int:
+    """Length of a fade of ``fade_s`` s at ``rate`` Hz, in samples (at least 1)."""
     return max(1, int(round(fade_s * rate)))

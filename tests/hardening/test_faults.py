@@ -28,7 +28,7 @@ import pytest
 
 from sheafsynth.engine.errors import AudioError
 from sheafsynth.engine.instrument import Instrument
-from sheafsynth.engine.ir.lower import GUARD_LIMIT, LIMITER_CEILING
+from sheafsynth.engine.ir.program import GUARD_LIMIT, LIMITER_CEILING
 from tests.live import REPO
 
 RATE = 48000

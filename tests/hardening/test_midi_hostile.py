@@ -24,7 +24,7 @@ from hypothesis import strategies as st
 
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.instrument import Instrument
-from sheafsynth.engine.ir.lower import LIMITER_CEILING
+from sheafsynth.engine.ir.program import LIMITER_CEILING
 from sheafsynth.host.controls import MidiTranslator
 from sheafsynth.host.live.midi import parse
 

@@ -38,7 +38,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.ir.lower import LIMITER_CEILING
+from sheafsynth.engine.ir.program import LIMITER_CEILING
 from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.preset import factory_presets
 from tests.engine.preset.test_preset import BASE, MALFORMED, mutate

@@ -24,7 +24,7 @@ import time
 import numpy as np
 import pytest
 
-from sheafsynth.engine.ir.lower import LIMITER_CEILING
+from sheafsynth.engine.ir.program import LIMITER_CEILING
 from tests.conftest import midi_loss_explained, realtime_criteria, host_xruns
 from tests.hardening.conftest import soak_seconds
 

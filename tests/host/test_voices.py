@@ -172,7 +172,7 @@ def test_repeated_note_does_not_stack_held_voices(rig):
 
 def test_stolen_voice_fades_out_instead_of_being_cut(preset):
     """Stealing ramps the old note down over RAMP_FADE_S (a few ms) before the new one starts."""
-    from sheafsynth.engine.ir.lower import RAMP_FADE_S
+    from sheafsynth.engine.ir.program import RAMP_FADE_S
 
     inst = Instrument(preset, rate=48000, max_block=BLOCK, polyphony=1)
     tr = MidiTranslator(preset, inst.program.param_index)

@@ -12,18 +12,20 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
-from sheafsynth.engine.ir import fields as FP
+from sheafsynth.engine.backends.reference.field import FieldState, field_read, field_step, new_field_state
 from sheafsynth.engine.ir import voicing as V
-from sheafsynth.engine.ir.lower import (GUARD_LIMIT, HELD_QUIET_S, LIMITER_RELEASE_S, MAX_BEND_SEMITONES, RAMP_FADE_S,
-                    SILENCE_HELD, SILENCE_RELEASED, StepProgram, note_hz)
+from sheafsynth.engine.ir.fields import kappa2, release_rho
+from sheafsynth.engine.ir.program import (GUARD_LIMIT, HELD_QUIET_S, KIND_DELAY, KIND_FIELD, KIND_LINEAR,
+                                          LIMITER_RELEASE_S, MAX_BEND_SEMITONES, RAMP_FADE_S, SILENCE_HELD,
+                                          SILENCE_RELEASED, Block, StepProgram, note_hz)
 from sheafsynth.engine.ir.tuning import tune_loop
+from sheafsynth.engine.model.cells.field_model import f32
 
-
-def f32(x: float) -> float:
-    return float(np.float32(x))
+__all__ = ["ReferenceStepper"]
 
 
 @dataclass
@@ -32,22 +34,23 @@ class _Voice:
     note: int = 0
     vel: int = 0
     order: int = 0
-    pending: tuple | None = None       # (note, vel, release_flag)
+    pending: tuple[int, int, int] | None = None   # (note, vel, release_flag)
     fade_left: int = -1                # samples left in a fade, -1 when not fading
     rng: int = 1
     exc_left: int = 0
     exc_amp: float = 0.0
     exc_pole: float = 0.0
     exc_y: float = 0.0
+    exc_kind: str = "noise"
     peak: float = 0.0
     quiet: int = 0
     pos: int = 0
-    rings: dict = field(default_factory=dict)
-    lens: dict = field(default_factory=dict)
-    relg: dict = field(default_factory=dict)
-    states: dict = field(default_factory=dict)
-    tune: dict = field(default_factory=dict)
-    fields: dict = field(default_factory=dict)      # field block -> fieldprog.FieldState
+    rings: dict[int, list[float]] = field(default_factory=dict)
+    lens: dict[int, int] = field(default_factory=dict)
+    relg: dict[int, float] = field(default_factory=dict)
+    states: dict[int, Any] = field(default_factory=dict)
+    tune: dict[str, float] = field(default_factory=dict)
+    fields: dict[int, FieldState] = field(default_factory=dict)      # field block -> its state
 
 
 class ReferenceStepper:
@@ -88,11 +91,11 @@ class ReferenceStepper:
             n, a = tune_loop(self.p, lp, pitch, env, v.lens[lp.delay] if keep else None)
             v.lens[lp.delay] = n
             if lp.tuner is not None:
-                k = f32(a)
+                k = f32(a if a is not None else 0.0)
                 v.tune[f"@tune{lp.index}"] = k
                 v.tune[f"@tunec{lp.index}"] = f32(math.sqrt(1.0 - k * k))
         for bi, st in v.fields.items():
-            st.k2 = FP.kappa2(self.p.blocks[bi].field, pitch, self.p.rate, env)
+            st.k2 = kappa2(self.p.blocks[bi].fieldprog(), pitch, self.p.rate, env)
         if v.status == V.RELEASED:
             self._release_gains(v)
 
@@ -101,7 +104,7 @@ class ReferenceStepper:
         for bi, n in v.lens.items():
             v.relg[bi] = f32(self.p.release_decay ** (n / period))
         for bi, st in v.fields.items():
-            st.rho = FP.release_rho(self.p.blocks[bi].field, period, self.p.release_decay)
+            st.rho = release_rho(self.p.blocks[bi].fieldprog(), period, self.p.release_decay)
 
     def _start(self, v: _Voice, note: int, vel: int) -> None:
         p = self.p
@@ -112,10 +115,10 @@ class ReferenceStepper:
         v.rng = V.seed_voice(self.seed, self.started)
         v.peak, v.quiet, v.pos = 0.0, 0, 0
         v.rings = {b.index: [0.0] * p.ring_size[b.index] for b in p.blocks if b.is_delay}
-        v.lens = {b.index: b.delay_length for b in p.blocks if b.is_delay and not b.pitch}
+        v.lens = {b.index: b.fixed_length() for b in p.blocks if b.is_delay and not b.pitch}
         v.relg = {b.index: 1.0 for b in p.blocks if b.is_delay}
         v.states = {b.index: [0.0] * b.n_state for b in p.blocks if not b.is_delay}
-        v.fields = {b.index: FP.new_state(b.field) for b in p.blocks if b.is_field}
+        v.fields = {b.index: new_field_state(b.fieldprog()) for b in p.blocks if b.is_field}
         v.tune = {}
         self._tune(v)
         exc = p.excitation
@@ -305,24 +308,16 @@ class ReferenceStepper:
             sig[0] = e
             # 2. outputs of cells without feedthrough
             for blk in p.blocks:
-                if blk.is_delay:
-                    ring = v.rings[blk.index]
-                    sig[blk.out_signal] = ring[(v.pos - v.lens[blk.index]) % len(ring)]
-                elif blk.is_field:
-                    for r in range(blk.n_out):
-                        sig[blk.out_signal + r] = FP.reference_read(blk.field, v.fields[blk.index], env, r)
-                elif not blk.feedthrough:
-                    s = v.states[blk.index]
-                    C = blk.C.value(env)
-                    for r in range(blk.n_out):
-                        sig[blk.out_signal + r] = float(C[r] @ s) if blk.n_state else 0.0
+                if not blk.feedthrough:
+                    _READ[blk.kind](self, v, blk, env, sig)
             # 3. feedthrough cells in order
             for bi in p.order:
                 blk = p.blocks[bi]
                 u = [sum(t.gain.value(env) * sig[t.signal] for t in port) for port in blk.inputs]
                 inputs[bi] = u
                 s = v.states[bi]
-                C, D = blk.C.value(env), blk.D.value(env)
+                _, _, Cm, Dm = blk.linear()
+                C, D = Cm.value(env), Dm.value(env)
                 for r in range(blk.n_out):
                     acc = float(D[r] @ u)
                     if blk.n_state:
@@ -335,16 +330,7 @@ class ReferenceStepper:
                                          for port in blk.inputs]
             # 5. state update and output
             for blk in p.blocks:
-                u = inputs[blk.index]
-                if blk.is_delay:
-                    ring = v.rings[blk.index]
-                    ring[v.pos % len(ring)] = u[0] * v.relg[blk.index]
-                elif blk.is_field:
-                    FP.reference_step(blk.field, v.fields[blk.index], env, u)
-                elif blk.n_state:
-                    s = np.asarray(v.states[blk.index])
-                    A, B = blk.A.value(env), blk.B.value(env)
-                    v.states[blk.index] = list(A @ s + B @ np.asarray(u))
+                _STEP[blk.kind](self, v, blk, env, inputs[blk.index])
             v.pos += 1
             y = sum(t.gain.value(env) * sig[t.signal] for t in p.out_terms)
             if v.fade_left >= 0:
@@ -394,3 +380,42 @@ class ReferenceStepper:
                 out[i] = x
         self.lim_g = g
         return out.astype(np.float32)
+
+
+# -- one reader (step 2) and one stepper (step 5) per block kind -------------
+
+def _read_linear(r: ReferenceStepper, v: _Voice, blk: Block, env: dict[str, float], sig: list[float]) -> None:
+    s = v.states[blk.index]
+    C = blk.linear()[2].value(env)
+    for k in range(blk.n_out):
+        sig[blk.out_signal + k] = float(C[k] @ s) if blk.n_state else 0.0
+
+
+def _read_delay(r: ReferenceStepper, v: _Voice, blk: Block, env: dict[str, float], sig: list[float]) -> None:
+    ring = v.rings[blk.index]
+    sig[blk.out_signal] = ring[(v.pos - v.lens[blk.index]) % len(ring)]
+
+
+def _read_field(r: ReferenceStepper, v: _Voice, blk: Block, env: dict[str, float], sig: list[float]) -> None:
+    for k in range(blk.n_out):
+        sig[blk.out_signal + k] = field_read(blk.fieldprog(), v.fields[blk.index], env, k)
+
+
+def _step_linear(r: ReferenceStepper, v: _Voice, blk: Block, env: dict[str, float], u: list[float]) -> None:
+    if blk.n_state:
+        A, B, _, _ = blk.linear()
+        s = np.asarray(v.states[blk.index])
+        v.states[blk.index] = list(A.value(env) @ s + B.value(env) @ np.asarray(u))
+
+
+def _step_delay(r: ReferenceStepper, v: _Voice, blk: Block, env: dict[str, float], u: list[float]) -> None:
+    ring = v.rings[blk.index]
+    ring[v.pos % len(ring)] = u[0] * v.relg[blk.index]
+
+
+def _step_field(r: ReferenceStepper, v: _Voice, blk: Block, env: dict[str, float], u: list[float]) -> None:
+    field_step(blk.fieldprog(), v.fields[blk.index], env, u)
+
+
+_READ = {KIND_LINEAR: _read_linear, KIND_DELAY: _read_delay, KIND_FIELD: _read_field}
+_STEP = {KIND_LINEAR: _step_linear, KIND_DELAY: _step_delay, KIND_FIELD: _step_field}

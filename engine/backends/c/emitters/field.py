@@ -1,4 +1,4 @@
-"""C text for field blocks (called from sheafsynth.engine.backends.c.emit).
+"""C text for field blocks (the "field" entry of engine.backends.c.emitters.EMITTERS).
 
 Per field block ``b`` the generated kernel holds, in the voice struct,
 ``fb<b>[2][size]`` (u and v = u - u_prev: the velocity form of
@@ -8,22 +8,67 @@ engine.ir.fields), the pitch factor ``fk<b>`` and the release factor
 after another.  Per sample: pickups read u (step 2); step 5 fills the
 ghost cells, computes v+ in place (it reads only u's neighbourhood and its
 own v), adds the strikes to v+, then u += v+.  The update
-formula and the coefficient arithmetic are those of engine.ir.fields; the
+formula and the coefficient arithmetic are those of engine.ir.fields (the
+Python implementation is engine.backends.reference.field); the
 stencil loops run over contiguous rows with ``restrict`` pointers so the
 compiler can vectorise them; CSR loops read static tables.
 
 Safety rules as in engine.backends.c.emit: identifiers come from block indices,
 numbers pass through ``num`` / ``dnum`` (finite-checked), nothing from the
-preset's text is printed.
+preset's text is printed.  Audio thread: the update is fixed-size loops over
+the voice's own buffers and the state's scratch rows; no allocation.
 """
 
 from __future__ import annotations
 
+from typing import Callable
+
 import numpy as np
 
-from sheafsynth.engine.ir.fields import FieldProgram, Stencil, _seam_scale_table
+from sheafsynth.engine.backends.c.emitters.base import BlockEmitter
+from sheafsynth.engine.backends.c.text import PI, Coefs, LoopContext, dnum, num
+from sheafsynth.engine.errors import BuildError
+from sheafsynth.engine.ir.fields import FieldProgram, Stencil
+from sheafsynth.engine.ir.program import KIND_FIELD, Block, StepProgram
+from sheafsynth.engine.model.field_sheaf import seam_scale
+from sheafsynth.engine.preset.affine import Affine
 
-_PI = "3.14159265358979323846"
+__all__ = ["FieldEmitter", "seam_scale_table"]
+
+Fmt = Callable[[float], str]
+
+
+def seam_scale_table(fp: FieldProgram) -> tuple[list[float] | None, list[float] | None]:
+    """Weight factors for points interpolated across a seam (as position_weights applies them)."""
+    cx, sh = fp.model.complex, fp.model.sheaf
+    if cx.kind == "path":
+        if not cx.wrapped[0]:
+            return None, None
+        return [seam_scale(sh, cx.n_edges - 1)], None
+    m, n = _shape2(fp)
+    sc0: list[float] | None = None
+    sc1: list[float] | None = None
+    if cx.wrapped[0]:
+        sc0 = [seam_scale(sh, int(np.flatnonzero((cx.seam == 0) & (cx.edges[:, 0] == (m - 1) * n + j))[0]))
+               for j in range(n)]
+    if cx.wrapped[1]:
+        sc1 = [seam_scale(sh, int(np.flatnonzero((cx.seam == 1) & (cx.edges[:, 0] == i * n + n - 1))[0]))
+               for i in range(m)]
+    return sc0, sc1
+
+
+
+def _shape2(fp: FieldProgram) -> tuple[int, int]:
+    shape = fp.model.complex.shape
+    if shape is None or len(shape) != 2:
+        raise BuildError("internal: a grid field without a 2-d shape")
+    return int(shape[0]), int(shape[1])
+
+
+def _stencil(fp: FieldProgram) -> Stencil:
+    if fp.stencil is None:
+        raise BuildError("internal: a stencil-layout field without its stencil")
+    return fp.stencil
 
 
 def _fmt_list(vals, fmt) -> str:
@@ -44,70 +89,13 @@ def _int(x) -> str:
 
 
 # --------------------------------------------------------------------------
-# structs, reset, release, tuning
-
-def voice_scalars(b) -> list[str]:
-    i = b.index
-    return [f"    float fk{i};", f"    float frel{i};"]
-
-
-def voice_arrays(b) -> list[str]:
-    fp: FieldProgram = b.field
-    return [f"    {fp.ctype} fb{b.index}[2][{fp.size}];     /* u, v = u - u_prev */"]
-
-
-def state_members(b) -> list[str]:
-    fp: FieldProgram = b.field
-    out = []
-    if fp.uses_eta:
-        out.append(f"    {fp.ctype} fw{b.index}[{fp.size}];")
-    if fp.uses_stiff and fp.layout == "stencil":
-        out.append(f"    {fp.ctype} fy{b.index}[{fp.size}];")
-    return out
-
-
-def reset_lines(b) -> list[str]:
-    i = b.index
-    return [f"    memset(v->fb{i}, 0, sizeof(v->fb{i}));",
-            f"    v->fk{i} = 1.0f;", f"    v->frel{i} = 1.0f;"]
-
-
-def release_lines(b, dnum) -> list[str]:
-    fp: FieldProgram = b.field
-    return [f"    v->frel{b.index} = (float)pow(SSK_RELEASE_DECAY, {dnum(fp.release_power)} / period);"]
-
-
-def tune_lines(b, dnum, coefs) -> list[str]:
-    """k2 for the played pitch (engine.ir.fields._k2_raw: damped root at the note's angle)."""
-    fp: FieldProgram = b.field
-    if not fp.tuned:
-        return []
-    t = fp.model.tune
-    sg = coefs.c_value(fp.loss, "S->p_cur[{}]")
-    et = coefs.c_value(fp.hf_loss, "S->p_cur[{}]") if fp.uses_eta else "0.0"
-    p1 = dnum(fp.p1)
-    return ["    {",
-            f"        const double sg = (double)(float)({sg}), et = (double)(float)({et});",
-            f"        const double f = ss_note_hz(pitch) * {dnum(t.ratio)} * pow(2.0, {dnum(t.cents)} / 1200.0);",
-            f"        const double w = 2.0 * {_PI} * f / SSK_RATE;",
-            f"        const double r2 = (1.0 + sg) * (1.0 - sg - et * {p1});",
-            f"        double q = r2 > 0.0 ? 2.0 - et * {p1} - 2.0 * cos(w) * sqrt(r2) : 2.0 - 2.0 * cos(w);",
-            "        double k2;",
-            "        if (q < 0.0) q = 0.0;",
-            f"        k2 = q / {dnum(fp.q1)};",
-            f"        if (k2 > {dnum(fp.k2_max)}) k2 = {dnum(fp.k2_max)};",
-            f"        v->fk{b.index} = (float)k2;",
-            "    }"]
-
-
-# --------------------------------------------------------------------------
 # static tables and point functions
 
-def tables(b, num, dnum=None) -> list[str]:
-    fp: FieldProgram = b.field
+def _tables(b: Block) -> list[str]:
+    fp = b.fieldprog()
     i = b.index
     out: list[str] = []
-    vfmt = dnum if (dnum is not None and fp.ctype == "double") else num
+    vfmt: Fmt = dnum if fp.ctype == "double" else num
     if fp.layout == "csr":
         for tag, m in (("l", fp.L), ("s", fp.S if fp.uses_stiff else None)):
             if m is None:
@@ -121,17 +109,17 @@ def tables(b, num, dnum=None) -> list[str]:
             out.append(f"static const {fp.ctype if vfmt is not num else 'float'} ssk_f{i}_{tag}v[{max(1, m.nnz)}] = {{\n    "
                        f"{_fmt_list(m.data, vfmt)}}};")
     if any(p.parametric for p in fp.inputs + fp.outputs):
-        out.extend(_point_function(b, num))
+        out.extend(_point_function(b))
     return out
 
 
-def _point_function(b, num) -> list[str]:
-    fp: FieldProgram = b.field
+def _point_function(b: Block) -> list[str]:
+    fp = b.fieldprog()
     cx = fp.model.complex
     i = b.index
     V = cx.n_vertices
     out = [f"static const int32_t ssk_f{i}_vx[{V}] = {{\n    {_fmt_list(fp.vertex_base, _int)}}};"]
-    sc0, sc1 = _seam_scale_table(fp)
+    sc0, sc1 = seam_scale_table(fp)
     if sc0 is not None:
         out.append(f"static const float ssk_f{i}_sc0[{len(sc0)}] = {{\n    {_fmt_list(sc0, num)}}};")
     if sc1 is not None:
@@ -155,7 +143,7 @@ def _point_function(b, num) -> list[str]:
                 f"    x{var} = 0;"]
 
     if cx.kind == "path":
-        n = cx.shape[0]
+        n = int(cx.n_vertices)
         out.append(f"static int ssk_fpt{i}(double p0, double p1, int32_t *ix, float *wt) {{")
         out.append("    int cnt = 0, a, a0, a1, xa;")
         out.append("    double x, fa;")
@@ -179,7 +167,7 @@ def _point_function(b, num) -> list[str]:
         out.append("    return cnt;")
         out.append("}")
         return out
-    m, n = cx.shape
+    m, n = _shape2(fp)
     w0, w1 = cx.wrapped
     mob = cx.wrap == "mobius"
     out.append(f"static int ssk_fpt{i}(double p0, double p1, int32_t *ix, float *wt) {{")
@@ -224,52 +212,37 @@ def _point_function(b, num) -> list[str]:
 # --------------------------------------------------------------------------
 # the sample loop
 
-def loop_locals(b) -> list[str]:
-    i = b.index
-    T = b.field.ctype
-    return [f"    {T} *restrict fu{i} = v->fb{i}[0];",
-            f"    {T} *restrict fv{i} = v->fb{i}[1];",
-            f"    const float fk{i} = v->fk{i}, frel{i} = v->frel{i};"]
-
-
-def save_lines(b) -> list[str]:
-    return []
-
-
-def _coord(ctx, e, num) -> str:
+def _coord(ctx: LoopContext, e: Affine) -> str:
     c = ctx.coef(e)
     return "0.0f" if c is None else c
 
 
-def _point_args(ctx, pt, num) -> tuple[str, str]:
-    cs = [f"(double){_coord(ctx, e, num)}" for e in pt.coords]
+def _point_args(ctx: LoopContext, pt) -> tuple[str, str]:
+    cs = [f"(double){_coord(ctx, e)}" for e in pt.coords]
     return (cs[0], cs[1] if len(cs) > 1 else "0.0")
 
 
-def output_lines(ctx, b, num) -> list[str]:
+def _output_lines(ctx: LoopContext, b: Block) -> list[str]:
     """Step 2: the pickup reads from u."""
-    fp: FieldProgram = b.field
+    fp = b.fieldprog()
     i = b.index
     out = []
     for r, pt in enumerate(fp.outputs):
         sig = f"x{b.out_signal + r}"
         if pt.parametric:
             out.append(f"        float {sig};")
-            out.extend(_param_point(ctx, b, pt, num, f"{sig} = ", read=True))
+            out.extend(_param_point(ctx, b, pt, f"{sig} = ", read=True))
         else:
-            w = fp.weights(pt, ctx_env(ctx))
+            w = fp.weights(pt, ctx.env())
             terms = [f"{num(w[k])} * fu{i}[{int(fp.storage[k])}]" for k in np.flatnonzero(w)]
             out.append(f"        const float {sig} = {' + '.join(terms) if terms else '0.0f'};")
     return out
 
 
-def ctx_env(ctx) -> dict:
-    return {p.name: p.value for p in ctx.prog.params}
-
-
-def _param_point(ctx, b, pt, num, target: str, read: bool, src: str = "") -> list[str]:
+def _param_point(ctx: LoopContext, b: Block, pt, target: str, read: bool, src: str = "") -> list[str]:
     i = b.index
-    a0, a1 = _point_args(ctx, pt, num)
+    fp = b.fieldprog()
+    a0, a1 = _point_args(ctx, pt)
     d = [float(x) for x in pt.direction]
     out = ["        {",
            "            int32_t pix[4];",
@@ -277,7 +250,7 @@ def _param_point(ctx, b, pt, num, target: str, read: bool, src: str = "") -> lis
            f"            const int pn = ssk_fpt{i}({a0}, {a1}, pix, pwt);",
            "            int pk;"]
     if read:
-        out.append(f"            {b.field.ctype} acc = 0.0;")
+        out.append(f"            {fp.ctype} acc = 0.0;")
         comps = [f"{num(x)} * fu{i}[pix[pk] + {k}]" for k, x in enumerate(d) if x != 0.0]
         out.append(f"            for (pk = 0; pk < pn; ++pk) acc += pwt[pk] * ({' + '.join(comps)});")
         out.append(f"            {target}(float)acc;")
@@ -292,7 +265,7 @@ def _param_point(ctx, b, pt, num, target: str, read: bool, src: str = "") -> lis
 
 
 def _ghost_lines(st: Stencil, X: str, T: str = "float") -> list[str]:
-    """Fill the ghost cells of buffer X from its active cells (module doc of fieldprog)."""
+    """Fill the ghost cells of buffer X from its active cells (module doc of engine.ir.fields)."""
     W, MI, NI = st.width, st.rows, st.cols
     out: list[str] = []
 
@@ -374,11 +347,14 @@ def _rows(st: Stencil, ptrs: list[tuple[str, str, bool]], body: list[str], c_fro
     return out
 
 
-def update_lines(ctx, b, num) -> list[str]:
+def _update_lines(ctx: LoopContext, b: Block) -> list[str]:
     """Step 5: coefficients, v+ (velocity form, engine.ir.fields), strikes, u += v."""
-    fp: FieldProgram = b.field
+    fp = b.fieldprog()
     i = b.index
-    co = lambda e: _coord(ctx, e, num)  # noqa: E731
+
+    def co(e: Affine) -> str:
+        return _coord(ctx, e)
+
     out = ["        {"]
     out.append(f"            const double lam = (double){co(fp.speed)}, sg = (double){co(fp.loss)};")
     out.append(f"            const double k2 = (double)fk{i}, rho = (double)frel{i};")
@@ -403,9 +379,9 @@ def update_lines(ctx, b, num) -> list[str]:
     for p, pt in enumerate(fp.inputs):
         src = f"u{i}_{p}"
         if pt.parametric:
-            strikes.extend("    " + line for line in _param_point(ctx, b, pt, num, "", read=False, src=src))
+            strikes.extend("    " + line for line in _param_point(ctx, b, pt, "", read=False, src=src))
         else:
-            w = fp.weights(pt, ctx_env(ctx))
+            w = fp.weights(pt, ctx.env())
             for k in np.flatnonzero(w):
                 strikes.append(f"            V[{int(fp.storage[k])}] += {num(w[k])} * {src};")
     if fp.layout == "stencil":
@@ -417,7 +393,7 @@ def update_lines(ctx, b, num) -> list[str]:
 
 
 def _stencil_update(fp: FieldProgram, i: int, diff: bool, strikes: list[str]) -> list[str]:
-    st = fp.stencil
+    st = _stencil(fp)
     T = fp.ctype
     out = ["            int fr, fc;", "            (void)fr;"]
     if diff or not fp.uses_eta or fp.uses_stiff:      # the eta pass reads no ghosts of U
@@ -478,3 +454,72 @@ def _csr_update(fp: FieldProgram, i: int, diff: bool, strikes: list[str]) -> lis
     out.extend(strikes)
     out.append(f"            for (fi = 0; fi < {n}; ++fi) U[fi] += V[fi];")
     return out
+
+
+class FieldEmitter(BlockEmitter):
+    """Field blocks: buffers ``fb<b>[2][size]`` (u, v) per voice, k2 ``fk<b>``, release ``frel<b>``."""
+
+    kind = KIND_FIELD
+
+    def tables(self, prog: StepProgram, b: Block) -> list[str]:
+        return _tables(b)
+
+    def voice_scalars(self, prog: StepProgram, b: Block) -> list[str]:
+        return [f"    float fk{b.index};", f"    float frel{b.index};"]
+
+    def voice_arrays(self, prog: StepProgram, b: Block) -> list[str]:
+        fp = b.fieldprog()
+        return [f"    {fp.ctype} fb{b.index}[2][{fp.size}];     /* u, v = u - u_prev */"]
+
+    def state_members(self, prog: StepProgram, b: Block) -> list[str]:
+        fp = b.fieldprog()
+        out = []
+        if fp.uses_eta:
+            out.append(f"    {fp.ctype} fw{b.index}[{fp.size}];")
+        if fp.uses_stiff and fp.layout == "stencil":
+            out.append(f"    {fp.ctype} fy{b.index}[{fp.size}];")
+        return out
+
+    def reset_lines(self, prog: StepProgram, b: Block) -> list[str]:
+        i = b.index
+        return [f"    memset(v->fb{i}, 0, sizeof(v->fb{i}));",
+                f"    v->fk{i} = 1.0f;", f"    v->frel{i} = 1.0f;"]
+
+    def release_lines(self, prog: StepProgram, b: Block) -> list[str]:
+        fp = b.fieldprog()
+        return [f"    v->frel{b.index} = (float)pow(SSK_RELEASE_DECAY, {dnum(fp.release_power)} / period);"]
+
+    def tune_lines(self, prog: StepProgram, b: Block, coefs: Coefs) -> list[str]:
+        """k2 for the played pitch (engine.ir.fields.k2_raw: damped root at the note's angle)."""
+        fp = b.fieldprog()
+        t = fp.model.tune
+        if t is None:
+            return []
+        sg = coefs.c_value(fp.loss, "S->p_cur[{}]")
+        et = coefs.c_value(fp.hf_loss, "S->p_cur[{}]") if fp.uses_eta else "0.0"
+        p1 = dnum(fp.p1)
+        return ["    {",
+                f"        const double sg = (double)(float)({sg}), et = (double)(float)({et});",
+                f"        const double f = ss_note_hz(pitch) * {dnum(t.ratio)} * pow(2.0, {dnum(t.cents)} / 1200.0);",
+                f"        const double w = 2.0 * {PI} * f / SSK_RATE;",
+                f"        const double r2 = (1.0 + sg) * (1.0 - sg - et * {p1});",
+                f"        double q = r2 > 0.0 ? 2.0 - et * {p1} - 2.0 * cos(w) * sqrt(r2) : 2.0 - 2.0 * cos(w);",
+                "        double k2;",
+                "        if (q < 0.0) q = 0.0;",
+                f"        k2 = q / {dnum(fp.q1)};",
+                f"        if (k2 > {dnum(fp.k2_max)}) k2 = {dnum(fp.k2_max)};",
+                f"        v->fk{b.index} = (float)k2;",
+                "    }"]
+
+    def loop_locals(self, ctx: LoopContext, b: Block) -> list[str]:
+        i = b.index
+        T = b.fieldprog().ctype
+        return [f"    {T} *restrict fu{i} = v->fb{i}[0];",
+                f"    {T} *restrict fv{i} = v->fb{i}[1];",
+                f"    const float fk{i} = v->fk{i}, frel{i} = v->frel{i};"]
+
+    def output_lines(self, ctx: LoopContext, b: Block) -> list[str]:
+        return _output_lines(ctx, b)
+
+    def update_lines(self, ctx: LoopContext, b: Block) -> list[str]:
+        return _update_lines(ctx, b)

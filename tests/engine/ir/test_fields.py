@@ -15,12 +15,13 @@ import scipy.sparse.linalg as spla
 
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.analysis.assemble import assemble
-from sheafsynth.engine.model.cells.field import FieldModel
+from sheafsynth.engine.model.cells.field_model import FieldModel
 from sheafsynth.engine.backends.c.emit import generate
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.ir.fields import stencil_operators
 from sheafsynth.engine.instrument import Instrument
-from sheafsynth.engine.ir.lower import lower, note_hz
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.ir.program import note_hz
 from sheafsynth.engine.locations import FACTORY_DIR
 from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.model.sheaf import sheaf_of

@@ -14,7 +14,7 @@ from sheafsynth.engine.backends.c import build
 from sheafsynth.engine.errors import BuildError, SheafsynthError
 
 CDEF = "int ss_test_add(int a, int b);"
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[3]
 
 
 def _source(salt: str) -> str:
