@@ -8,12 +8,12 @@ import pytest
 import scipy.linalg as sla
 import scipy.sparse.linalg as spla
 
-from sheafsynth.engine.model.complexes import (
-    FieldSheaf, check_consistency, complex_from_spec, diffusion_stable,
-    diffusion_step, field_sheaf_from_cell, gershgorin_bound, leapfrog_step,
-    lowest_eigenvalues, mode_frequency, mode_response, operator_mu_max,
-    position_weights, stable,
-)
+from sheafsynth.engine.model.complexes import complex_from_spec
+from sheafsynth.engine.model.field_sheaf import FieldSheaf, check_consistency, field_sheaf_from_cell
+from sheafsynth.engine.model.positions import position_weights
+from sheafsynth.engine.model.schemes import (diffusion_stable, diffusion_step, leapfrog_step, mode_frequency,
+                                             mode_response, stable)
+from sheafsynth.engine.model.spectra import gershgorin_bound, largest_eigenvalue, lowest_eigenvalues
 from sheafsynth.engine.errors import PresetError
 
 
@@ -239,7 +239,7 @@ def test_mu_max_bound_and_grid_stability():
             assert s.mu_max_bound(b) >= mu - 1e-9
     lap = sheaf({"grid": [30, 31]}).laplacian("free")
     ref = spla.eigsh(lap, k=1, which="LA", return_eigenvectors=False)[0]
-    assert operator_mu_max(lap) == pytest.approx(ref, rel=1e-9)
+    assert largest_eigenvalue(lap) == pytest.approx(ref, rel=1e-9)
     torus = sheaf({"grid": [26, 26], "wrap": "torus"})
     assert torus.mu_max() == pytest.approx(8.0, abs=1e-9)
     limit = 1 / math.sqrt(2)                                   # Bilbao 2009
@@ -264,7 +264,7 @@ def test_stability_with_losses_matches_mode_roots():
             assert stable(lam, mu, eta=eta, sigma=sigma) == inside
     # stiff bar: beta <= 1/2 with s_max = 16 (Bilbao 2009 ch. 7, from memory)
     ring = sheaf({"path": 40, "wrap": "ring"})
-    s_max = operator_mu_max(ring.stiffness())
+    s_max = largest_eigenvalue(ring.stiffness())
     assert s_max == pytest.approx(16.0)
     assert stable(0.0, 4.0, beta=0.5, s_max=s_max)
     assert not stable(0.0, 4.0, beta=0.501, s_max=s_max)
