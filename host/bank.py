@@ -21,10 +21,24 @@ from sheafsynth.engine.locations import FACTORY_DIR
 from sheafsynth.engine.ir.validate import check_preset, load_checked
 from sheafsynth.engine.preset import Preset, save_preset
 
+__all__ = ["BankEntry", "user_dir", "entries", "resolve", "load", "save_user_preset", "valid_preset_name",
+           "is_factory_name"]
+
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9 _\-]{0,63}$")
 
 
+def valid_preset_name(name: str) -> bool:
+    """True when ``name`` can name a user preset: 1-64 letters, digits, spaces, '-' or '_' (not first)."""
+    return _NAME_RE.match(name) is not None
+
+
+def is_factory_name(name: str) -> bool:
+    """True when a factory preset is called ``name`` (user presets may not take it)."""
+    return (FACTORY_DIR / f"{name}.json").exists()
+
+
 def user_dir() -> Path:
+    """The user presets folder (SHEAFSYNTH_USER_DIR, else the platform's user data folder)."""
     override = os.environ.get("SHEAFSYNTH_USER_DIR")
     if override:
         return Path(override).expanduser()
@@ -33,6 +47,8 @@ def user_dir() -> Path:
 
 @dataclass(frozen=True)
 class BankEntry:
+    """One preset of the bank listing; ``error`` is set when its file does not load."""
+
     name: str
     path: Path
     origin: str          # "factory" or "user"
@@ -72,14 +88,15 @@ def resolve(name_or_path: str) -> Path:
 
 
 def load(name_or_path: str) -> Preset:
+    """The preset a file path or a factory/user preset name names."""
     return load_checked(resolve(name_or_path))
 
 
 def save_user_preset(doc: dict, name: str) -> Path:
     """Save ``doc`` as user preset ``name`` atomically; factory names are refused."""
-    if not _NAME_RE.match(name):
+    if not valid_preset_name(name):
         raise PresetError(f"preset name {name!r} must be 1-64 letters, digits, spaces, '-' or '_'", "name")
-    if (FACTORY_DIR / f"{name}.json").exists():
+    if is_factory_name(name):
         raise PresetError(f'"{name}" is a factory preset; save under another name', "name")
     doc = dict(doc)
     doc["name"] = name

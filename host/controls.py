@@ -21,6 +21,9 @@ from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.preset import ControlSpec, Preset
 
+__all__ = ["CURVES", "curve_value", "Binding", "TranslatorCounters", "MidiTranslator", "DEFAULT_BEND_RANGE",
+           "CC_SUSTAIN", "CC_ALL_SOUND_OFF", "CC_RESET", "CC_ALL_NOTES_OFF"]
+
 CURVES: dict[str, Callable[[float, float, float], float]] = {
     "linear": lambda x, lo, hi: lo + (hi - lo) * x,
     "exp": lambda x, lo, hi: lo * (hi / lo) ** x,
@@ -32,7 +35,9 @@ DEFAULT_BEND_RANGE = 2.0
 
 
 def curve_value(spec: ControlSpec, x: float) -> float:
-    """Parameter value for a controller position ``x`` in [0, 1]."""
+    """Parameter value for a controller position ``x`` in [0, 1] (``spec`` with its range resolved)."""
+    if spec.lo is None or spec.hi is None:
+        raise PresetError(f"control of {spec.parameter!r} has no resolved range", "controls")
     x = min(1.0, max(0.0, x))
     return CURVES[spec.curve](x, spec.lo, spec.hi)
 
@@ -47,6 +52,8 @@ class Binding:
 
 @dataclass
 class TranslatorCounters:
+    """What a translator has seen: messages received and ignored, the last control moved."""
+
     received: int = 0
     ignored: int = 0                # other channel, unknown or malformed
     last_control: str = ""          # "tone = 0.31 tap weight"
@@ -132,7 +139,7 @@ class MidiTranslator:
 
     def _param(self, b: Binding, x: float, offset: int) -> tuple:
         v = curve_value(b.spec, x)
-        unit = self.preset.parameters[b.spec.parameter].unit
+        unit = self.preset.parameters[b.spec.parameter].unit if b.spec.parameter is not None else ""
         self.counters.last_control = f"{b.spec.parameter} = {v:.4g}{(' ' + unit) if unit else ''}"
         return (offset, V.EV_PARAM, b.index, 0, v)
 

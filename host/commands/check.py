@@ -12,7 +12,17 @@ import argparse
 import json
 import math
 
+import numpy as np
+
+from sheafsynth.engine.analysis.assemble import assemble
+from sheafsynth.engine.analysis.modes import all_poles, modes, plot_report
+from sheafsynth.engine.analysis.report import check
 from sheafsynth.engine.errors import InputError
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.preset import Preset
+from sheafsynth.host.commands.shared import Command, load_preset_arg
+
+__all__ = ["COMMAND", "render_text"]
 
 
 def _add(p: argparse.ArgumentParser) -> None:
@@ -39,7 +49,7 @@ def _fmt_t60(t) -> str:
 
 
 def render_text(r: dict) -> str:
-    L = []
+    L: list[str] = []
     w = L.append
     w(f"preset {r['preset']}   notes {', '.join(map(str, r['notes']))}   rate {r['rate']:g} Hz")
     box = ", ".join(f"{k} {v[0]:g}..{v[1]:g}" for k, v in r["box"].items()) or "no mapped parameters"
@@ -85,12 +95,8 @@ def render_text(r: dict) -> str:
     return "\n".join(L)
 
 
-def _run(args) -> int:
-    from sheafsynth.engine.analysis.report import check
-
-    from sheafsynth.host.cli import _load
-
-    preset = _load(args.preset, args.set)
+def _run(args: argparse.Namespace) -> int:
+    preset = load_preset_arg(args.preset, args.set)
     report = check(preset, _notes(args.notes), float(args.rate), use_cache=not args.no_cache)
     if args.plot:
         _plot(preset, report, args.plot, float(args.rate))
@@ -101,21 +107,16 @@ def _run(args) -> int:
     return 0 if report["stable"] else 1
 
 
-def _plot(preset, report, path, rate) -> None:
-    import numpy as np
-
-    from sheafsynth.engine.analysis.assemble import assemble
-    from sheafsynth.engine.ir.lower import lower
-    from sheafsynth.engine.analysis.modes import all_poles, modes, plot_report
-
+def _plot(preset: Preset, report: dict, path: str, rate: float) -> None:
+    """Draw poles, partials and T60 bars of ``preset`` at ``rate`` Hz to the PNG ``path``."""
     prog = lower(preset, rate)
     sysm = assemble(prog, None, report["mode_note"])
     poles = all_poles(sysm.A) if sysm.n_states <= 1500 else np.array([m.eigenvalue for m in
                                                                          modes(sysm.A, sysm.C, rate, count=40)])
     ms = modes(sysm.A, sysm.C, rate, count=12, partition=sysm.partition)
-    plot_report(path, poles, ms, title=f"{preset.name} at note {report['mode_note']}",
+    plot_report(path, [complex(p) for p in poles], ms, title=f"{preset.name} at note {report['mode_note']}",
                 spectral_radius=report["spectral_radius_max"])
     print(f"wrote {path}")
 
 
-COMMANDS = [("check", "check stability over every knob's range; modes, T60, drift", _add, _run)]
+COMMAND = Command("check", "check stability over every knob's range; modes, T60, drift", _add, _run)

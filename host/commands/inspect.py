@@ -8,9 +8,14 @@ the controller map.
 
 from __future__ import annotations
 
+import argparse
+
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.model.sheaf import sheaf_of
 from sheafsynth.engine.preset import Preset
+from sheafsynth.host.commands.shared import Command, load_preset_arg
+
+__all__ = ["COMMAND", "describe"]
 
 
 def _matrix(rows: list[list[str]], indent: str) -> list[str]:
@@ -21,6 +26,7 @@ def _matrix(rows: list[list[str]], indent: str) -> list[str]:
 
 
 def describe(preset: Preset, rate: float = 48000.0) -> str:
+    """The preset's cells, stalks, restriction maps, wires, loops, parameters and controls at ``rate`` Hz, as text."""
     sheaf = sheaf_of(preset)
     prog = lower(preset, rate)
     L: list[str] = []
@@ -72,13 +78,26 @@ def describe(preset: Preset, rate: float = 48000.0) -> str:
         w("  (none: no pitch-tracking delay)")
     w("")
     w("controls")
-    for c in preset.controls:
-        if c.source == "pitchbend":
-            w(f"  pitch bend  +-{c.range_semitones:g} semitones")
-        elif c.source == "cc":
-            w(f"  CC {c.cc:<3}     -> {c.parameter} ({c.curve}, {c.lo:g}..{c.hi:g})")
+    for ctl in preset.controls:
+        if ctl.source == "pitchbend":
+            w(f"  pitch bend  +-{ctl.range_semitones:g} semitones")
+        elif ctl.source == "cc":
+            w(f"  CC {ctl.cc:<3}     -> {ctl.parameter} ({ctl.curve}, {ctl.lo:g}..{ctl.hi:g})")
         else:
-            w(f"  {c.source:<10}  -> {c.parameter} ({c.curve}, {c.lo:g}..{c.hi:g})")
+            w(f"  {ctl.source:<10}  -> {ctl.parameter} ({ctl.curve}, {ctl.lo:g}..{ctl.hi:g})")
     if not preset.controls:
         w("  (none)")
     return "\n".join(L)
+
+
+def _add(p: argparse.ArgumentParser) -> None:
+    p.add_argument("preset", metavar="PRESET")
+    p.add_argument("--rate", type=int, default=48000)
+
+
+def _run(args: argparse.Namespace) -> int:
+    print(describe(load_preset_arg(args.preset), float(args.rate)))
+    return 0
+
+
+COMMAND = Command("inspect", "show a preset's cells, stalks and restriction maps", _add, _run)

@@ -16,14 +16,15 @@ import sys
 import time
 
 from sheafsynth.engine.errors import InputError
+from sheafsynth.host.commands.shared import Command
+from sheafsynth.host.live.idle_latency import ShallowIdle
+from sheafsynth.host.live.stall_probe import StallProbe
 
-__all__ = ["COMMANDS", "measure"]
+__all__ = ["COMMAND", "measure", "verdict"]
 
 
 def measure(seconds: float, period_s: float, *, shallow_idle: bool = False) -> dict:
     """One probe pass; returns its reading as a dict (plus whether shallow idle was held)."""
-    from sheafsynth.host.live.idle_latency import ShallowIdle
-    from sheafsynth.host.live.stall_probe import StallProbe
 
     with ShallowIdle() if shallow_idle else _Nothing() as idle:
         with StallProbe(period_s) as probe:
@@ -61,7 +62,7 @@ def _us(v: float) -> str:
     return f"{v / 1000:g} ms" if v >= 1000 else f"{v:g} µs"
 
 
-def _verdict(d: dict) -> str:
+def verdict(d: dict) -> str:
     period_ms = d["period_s"] * 1e3
     worst_ms = d["worst_late_s"] * 1e3
     if not d["realtime"]:
@@ -87,7 +88,7 @@ def _print_pass(title: str, d: dict) -> None:
         print(f"  late {label:>16}  {n:>8}  {100.0 * n / total:6.2f}%")
     print(f"  stalls (late > {d['stall_threshold_s'] * 1e3:.2f} ms): {d['stalls']} "
           f"({d['stalls_per_minute']:.1f} a minute); worst {d['worst_late_s'] * 1e3:.2f} ms")
-    print(f"  {_verdict(d)}")
+    print(f"  {verdict(d)}")
 
 
 def _add(p: argparse.ArgumentParser) -> None:
@@ -97,7 +98,7 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="machine-readable result")
 
 
-def _run(args) -> int:
+def _run(args: argparse.Namespace) -> int:
     if not 0.5 <= args.seconds <= 3600:
         raise InputError(f"--seconds {args.seconds:g}: expected 0.5..3600")
     if not 8000 <= args.rate <= 192000:
@@ -105,8 +106,6 @@ def _run(args) -> int:
     if not 16 <= args.buffer <= 4096:
         raise InputError(f"--buffer {args.buffer}: expected 16..4096 frames")
     period = args.buffer / args.rate
-    from sheafsynth.host.live.idle_latency import ShallowIdle
-
     passes = {"as_is": measure(args.seconds, period)}
     probe_idle = ShallowIdle().open()
     can_hold, why = probe_idle.held, probe_idle.reason
@@ -127,7 +126,5 @@ def _run(args) -> int:
     return 0
 
 
-COMMANDS = [
-    ("jitter", "measure how promptly this machine wakes real-time threads at the audio block rate",
-     _add, _run),
-]
+COMMAND = Command("jitter", "measure how promptly this machine wakes real-time threads at the audio block rate",
+                  _add, _run)

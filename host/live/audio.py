@@ -37,6 +37,10 @@ __all__ = [
     "KernelSwitchError",
     "list_audio_devices",
     "rescan_devices",
+    "sounddevice_module",
+    "OutputDevice",
+    "resolve_output_device",
+    "check_output_settings",
 ]
 
 
@@ -44,8 +48,12 @@ class RecorderError(AudioError):
     """The recording file could not be written."""
 
 
-def _sounddevice():
-    """Import sounddevice, turning a missing PortAudio into AudioError."""
+def sounddevice_module() -> Any:
+    """Import sounddevice, turning a missing PortAudio into AudioError.
+
+    Lazy on purpose: importing sounddevice loads PortAudio, which costs
+    start-up time and fails on machines without it.
+    """
     try:
         import sounddevice
     except OSError as exc:  # PortAudio shared library not found
@@ -60,7 +68,7 @@ def rescan_devices() -> None:
     PortAudio lists host APIs (such as a JACK server) only when it starts.
     Call only while no stream is open.
     """
-    sd = _sounddevice()
+    sd = sounddevice_module()
     try:
         sd._terminate()
         sd._initialize()
@@ -83,7 +91,7 @@ class AudioDevice:
 
 def list_audio_devices() -> list[AudioDevice]:
     """Every device with at least one output channel."""
-    sd = _sounddevice()
+    sd = sounddevice_module()
     try:
         devices = sd.query_devices()
         hostapis = sd.query_hostapis()
@@ -109,6 +117,43 @@ def list_audio_devices() -> list[AudioDevice]:
     return out
 
 
+@dataclasses.dataclass(frozen=True)
+class OutputDevice:
+    """The audio output ``--device`` chose: PortAudio index, host API name, its own rate (Hz), its name."""
+
+    index: int
+    hostapi: str
+    default_rate: float
+    name: str
+
+
+def resolve_output_device(device: str | None) -> OutputDevice:
+    """The output device an index or part of a name picks (None: the default); AudioError if none matches."""
+    sd = sounddevice_module()
+    spec: Any = device
+    if isinstance(device, str) and device.strip().isdigit():
+        spec = int(device)
+    try:
+        info = sd.query_devices(spec, kind="output")
+        api = sd.query_hostapis(info["hostapi"])["name"]
+    except (ValueError, sd.PortAudioError) as exc:
+        what = "no default audio output" if device is None else f"--device {device!r}"
+        raise AudioError(f"{what}: {str(exc).splitlines()[0]} (see `sheafsynth ports`)") from None
+    return OutputDevice(int(info["index"]), str(api), float(info["default_samplerate"]), str(info["name"]))
+
+
+def check_output_settings(index: int, rate: float, device_rate: float) -> None:
+    """AudioError now if device ``index`` cannot run at ``rate`` Hz in stereo float (``device_rate``: its own)."""
+    sd = sounddevice_module()
+    try:
+        sd.check_output_settings(device=index, samplerate=rate, channels=2, dtype="float32")
+    except (ValueError, sd.PortAudioError) as exc:
+        hint = f" (the device's own rate is {device_rate:g} Hz: try --rate {device_rate:g})" \
+            if abs(device_rate - rate) > 1e-6 else ""
+        raise AudioError(f"the audio output cannot play {rate:g} Hz stereo: "
+                         f"{str(exc).splitlines()[0]}{hint}") from None
+
+
 class Recorder:
     """Non-real-time thread that drains the runtime's record ring to a sound file.
 
@@ -125,7 +170,7 @@ class Recorder:
         self._buf: np.ndarray | None = None     # reused: no allocation per drain
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
-        self._file = None
+        self._file: Any = None                 # soundfile.SoundFile while recording
         self._error: BaseException | None = None
         self.frames_written = 0
 
@@ -295,7 +340,7 @@ class AudioOutput(AudioOutputBase):
         return f"{dev}, {self.rate:g} Hz, block {self.blocksize}, {self.channels} channel(s)"
 
     def _open(self) -> None:
-        sd = _sounddevice()
+        sd = sounddevice_module()
         rt = self.runtime
         # Our cdata belongs to another ffi: pass plain addresses, cast by sounddevice's ffi.
         callback = sd._ffi.cast("PaStreamCallback *", rt.callback_address)
@@ -321,7 +366,7 @@ class AudioOutput(AudioOutputBase):
         stream, self._stream = self._stream, None
         if stream is None:
             return
-        sd = _sounddevice()
+        sd = sounddevice_module()
         if not stream.active:
             # The stream ended by itself: the device (or the JACK server) went away.
             # Stopping or closing it -- and PortAudio's own clean-up at exit -- would

@@ -180,7 +180,7 @@ class MidiInputBase:
             raise InputError("a MIDI input needs either a port name to find or a virtual port name")
         if virtual is not None and not virtual.strip():
             raise InputError("--virtual-midi: the port name is empty")
-        self.pattern = name
+        self.pattern = name or ""       # empty with a virtual port (never searched then)
         self.virtual = virtual
         self.port_name: str | None = None
         self.state = "closed"

@@ -232,7 +232,8 @@ CAUSE_ELSEWHERE = "elsewhere in the graph"
 CAUSES = (CAUSE_STALL, CAUSE_PREEMPTED, CAUSE_SLOW, CAUSE_ELSEWHERE)
 
 
-def xrun_causes(xrun_ns: Sequence[int], stalls: Iterable[Stall], slow: Sequence[Sequence[int | None]],
+def xrun_causes(xrun_ns: Sequence[int], stalls: Iterable[Stall],
+                slow: Sequence[tuple[int, int] | tuple[int, int, int | None]],
                 period_s: float, *, window_s: float = EXPLAIN_WINDOW_S,
                 slow_fraction: float = SLOW_FRACTION) -> list[str]:
     """Each xrun's likely cause, one of :data:`CAUSES`.

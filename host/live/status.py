@@ -12,6 +12,7 @@ import os
 import shutil
 import sys
 from dataclasses import dataclass
+from typing import Any
 
 __all__ = ["StatusInfo", "format_status", "dbfs", "StatusLine", "Keyboard", "KEY_HELP"]
 
@@ -109,7 +110,7 @@ class Keyboard:
             except (AttributeError, ValueError):
                 enabled = False
         self.enabled = bool(enabled)
-        self._saved = None
+        self._saved: list[Any] | None = None      # termios attributes to restore
 
     def __enter__(self) -> "Keyboard":
         if self.enabled:

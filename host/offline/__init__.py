@@ -1,1 +1,3 @@
-"""sheafsynth.host.offline."""
+"""Offline rendering: notes and MIDI files to WAV through the live block loop (:mod:`.render`)."""
+
+__all__: list[str] = []

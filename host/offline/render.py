@@ -8,36 +8,28 @@ the same inputs give the same file.
 
 from __future__ import annotations
 
+import os
 import sys
-from dataclasses import dataclass
+import tempfile
 from pathlib import Path
 
+import mido
 import numpy as np
+import soundfile as sf
 
 from sheafsynth.engine.errors import InputError
 from sheafsynth.engine.instrument import Instrument
-
 from sheafsynth.host.controls import MidiTranslator
 
-BLOCK = 256
-TAIL_MAX_S = 8.0
+__all__ = ["BLOCK", "TAIL_MAX_S", "DEMO_PHRASE", "write_wav", "peak_dbfs", "render_note", "midi_events",
+           "render_midi"]
 
-
-@dataclass
-class RenderResult:
-    path: Path
-    seconds: float
-    peak_dbfs: float
-    counters: dict
+BLOCK = 256          # frames per kernel call, samples
+TAIL_MAX_S = 8.0     # longest tail rendered after the last MIDI event, s
 
 
 def write_wav(path: str | Path, audio: np.ndarray, rate: float, subtype: str = "PCM_24") -> Path:
-    """Write mono float audio to WAV atomically (temp file, rename)."""
-    import os
-    import tempfile
-
-    import soundfile as sf
-
+    """Write mono float audio at ``rate`` Hz to WAV atomically (temp file, rename)."""
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".wav", dir=target.parent)
@@ -54,7 +46,8 @@ def write_wav(path: str | Path, audio: np.ndarray, rate: float, subtype: str = "
     return target
 
 
-def _peak_dbfs(x: np.ndarray) -> float:
+def peak_dbfs(x: np.ndarray) -> float:
+    """Peak level of ``x`` in dBFS (-inf for silence)."""
     p = float(np.max(np.abs(x))) if len(x) else 0.0
     return 20.0 * np.log10(p) if p > 0 else float("-inf")
 
@@ -79,6 +72,7 @@ def _progress(total_s: float):
     """A rich progress bar for long renders on a terminal, else None."""
     if total_s < 20.0 or not sys.stderr.isatty():
         return None
+    # lazy: rich is needed only for long renders on a terminal (start-up time)
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
     return Progress(TextColumn("rendering"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
@@ -87,8 +81,6 @@ def _progress(total_s: float):
 
 def midi_events(path: str | Path):
     """(time_s, mido.Message) for every channel message of a Standard MIDI File."""
-    import mido
-
     p = Path(path)
     if not p.exists():
         raise InputError(f"{p}: no such MIDI file")
@@ -164,10 +156,3 @@ DEMO_PHRASE = [
     (1.50, 53, 66, 1.2), (2.60, 69, 92, 0.4), (2.85, 67, 80, 0.4), (3.10, 62, 104, 1.6),
     (3.10, 50, 90, 1.6),
 ]
-DEMO_SECONDS = 6.0
-
-
-def render_phrase(inst: Instrument, phrase=DEMO_PHRASE, seconds: float = DEMO_SECONDS) -> np.ndarray:
-    from sheafsynth.engine.instrument import render_notes
-
-    return render_notes(inst, phrase, seconds, block=BLOCK)

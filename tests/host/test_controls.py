@@ -19,7 +19,7 @@ from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.preset import ControlSpec, load_preset, parse_preset
 from sheafsynth.host.controls import CURVES, MidiTranslator, curve_value
-from sheafsynth.host.live.play import controls_doc
+from sheafsynth.host.live.programs import controls_doc
 
 from sheafsynth.engine.locations import FACTORY_DIR
 

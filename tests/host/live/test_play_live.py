@@ -30,14 +30,11 @@ import pytest
 from sheafsynth.engine.errors import InputError
 from tests.conftest import midi_loss_explained, realtime_criteria
 from tests.live import MidiSender, PlayProcess
-
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from measure import cents, fundamental, spectral_centroid  # noqa: E402
+from tests.measure import cents, fundamental, spectral_centroid
 
 pytestmark = pytest.mark.live
 
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[3]
 RATE = 48000
 BLOCK = 128
 PERIOD_S = BLOCK / RATE
@@ -563,7 +560,8 @@ def test_sigterm_stops_cleanly_and_reports(jack_server, tmp_path):
 # ------------------------------------------------------------------ bank and learn rules (no stream)
 
 def test_unchecked_user_presets_are_left_out_of_the_bank(jack_server, tmp_path, monkeypatch):
-    from sheafsynth.host.live.play import LiveHost, PlayOptions
+    from sheafsynth.host.live.options import PlayOptions
+    from sheafsynth.host.live.session import LiveHost
 
     monkeypatch.setenv("SHEAFSYNTH_USER_DIR", str(tmp_path))
     (tmp_path / "ramp-probe.json").write_text(json.dumps(RAMP_PROBE))
@@ -583,7 +581,8 @@ def test_unchecked_user_presets_are_left_out_of_the_bank(jack_server, tmp_path, 
 
 
 def test_learn_refuses_a_parameter_no_control_maps(jack_server, tmp_path, monkeypatch):
-    from sheafsynth.host.live.play import LiveHost, PlayOptions
+    from sheafsynth.host.live.options import PlayOptions
+    from sheafsynth.host.live.session import LiveHost
 
     monkeypatch.setenv("SHEAFSYNTH_USER_DIR", str(tmp_path / "b"))     # prepare() points it at --bank-dir
 

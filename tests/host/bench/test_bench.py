@@ -14,9 +14,11 @@ from pathlib import Path
 
 import pytest
 
-from sheafsynth.host.bench import run as bench
+from sheafsynth.host.bench.context import PLAIN_PRESET
+from sheafsynth.host.bench.report import GOALS, KEYS, format_table
+from sheafsynth.host.bench.stats import interleave, solve_half, spread
 
-ROOT = Path(__file__).resolve().parents[2]
+ROOT = Path(__file__).resolve().parents[3]
 
 
 def _number(x) -> bool:
@@ -38,7 +40,7 @@ def report(tmp_path_factory):
 
 
 def test_every_key_is_there(report):
-    for key in bench.KEYS:
+    for key in KEYS:
         assert key in report, key
     for key in ("goals", "details", "notes", "mode", "reps", "elapsed_s"):
         assert key in report, key
@@ -47,7 +49,7 @@ def test_every_key_is_there(report):
 
 def test_values_have_sane_types(report):
     notes = report["notes"]
-    for key in bench.KEYS:
+    for key in KEYS:
         if key in ("machine", "voices_at_half_core"):
             continue
         v = report[key]
@@ -56,7 +58,7 @@ def test_values_have_sane_types(report):
         if _number(v):
             assert v >= 0.0, key
     voices = report["voices_at_half_core"]
-    assert isinstance(voices, dict) and bench.PLAIN_PRESET in voices
+    assert isinstance(voices, dict) and PLAIN_PRESET in voices
     for name, n in voices.items():
         assert isinstance(name, str) and (n is None or (isinstance(n, int) and n >= 0)), (name, n)
 
@@ -71,7 +73,7 @@ def test_machine_is_named(report):
 
 def test_goals_and_spreads_are_reported(report):
     goals = report["goals"]
-    for key in bench.GOALS:
+    for key in GOALS:
         g = goals[key]
         assert isinstance(g["goal"], str) and g["goal"][:2] in ("<=", ">=")
         assert g["met"] in (True, False, None)
@@ -92,7 +94,7 @@ def test_same_arithmetic_as_the_hand_written_loops(report):
 
 
 def test_table_renders(report):
-    text = bench.format_table(report)
+    text = format_table(report)
     assert "generated / hand-written" in text and "voices at half a core" in text
 
 
@@ -105,11 +107,11 @@ def test_bad_output_path_is_one_line_error(tmp_path):
 
 
 def test_spread_and_solver_helpers():
-    s = bench.spread([3.0, 1.0, 2.0])
+    s = spread([3.0, 1.0, 2.0])
     assert s["median"] == 2.0 and s["min"] == 1.0 and s["max"] == 3.0 and s["n"] == 3
-    assert bench.spread([])["median"] is None
+    assert spread([])["median"] is None
     # load 0.25 at 100 voices, 0.75 at 300: half a core at 200
-    assert bench._solve_half([(100, 0.25), (300, 0.75)]) == pytest.approx(200.0)
+    assert solve_half([(100, 0.25), (300, 0.75)]) == pytest.approx(200.0)
     order = []
-    bench.interleave({"a": lambda: order.append("a") or 0.0, "b": lambda: order.append("b") or 0.0}, 2)
+    interleave({"a": lambda: order.append("a") or 0.0, "b": lambda: order.append("b") or 0.0}, 2)
     assert sorted(order) == ["a", "a", "b", "b"] and order[:2] != order[2:]

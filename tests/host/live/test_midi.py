@@ -8,7 +8,7 @@ import pytest
 
 from sheafsynth.engine.errors import InputError
 from sheafsynth.host.live.midi import ArrivalClock, MidiInputBase, find_port, parse
-from sheafsynth.host.live.play import PlayOptions
+from sheafsynth.host.live.options import PlayOptions
 from sheafsynth.host.live.status import StatusInfo, dbfs, format_status
 
 

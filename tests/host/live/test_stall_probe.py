@@ -21,7 +21,7 @@ from sheafsynth.host.live.idle_latency import ShallowIdle
 from sheafsynth.host.live.runtime import HostRuntime
 from sheafsynth.host.live.stall_probe import CAUSES, Stall, StallProbe, explain_coverage, explain_xruns, xrun_causes
 
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[3]
 PA_OUTPUT_UNDERFLOW = 0x4      # PortAudio v19 portaudio.h: paOutputUnderflow
 
 
@@ -280,23 +280,23 @@ def test_jitter_command_text_and_bad_input():
 
 
 def test_jitter_verdicts():
-    from sheafsynth.host.commands.jitter import _verdict
+    from sheafsynth.host.commands.jitter import verdict
 
     base = dict(period_s=128 / 48000, seconds=10.0, realtime=True, stalls=0, skipped=0,
                 stalls_per_minute=0.0, worst_late_s=0.0001)
-    assert _verdict(base).startswith("fit")
+    assert verdict(base).startswith("fit")
     some = dict(base, stalls=5, stalls_per_minute=30.0, worst_late_s=0.0012)
-    assert "30 stalls a minute" in _verdict(some)
+    assert "30 stalls a minute" in verdict(some)
     bad = dict(base, stalls=5, stalls_per_minute=30.0, skipped=4, worst_late_s=0.012)
-    assert _verdict(bad).startswith("unfit") and "24 block deadlines a minute" in _verdict(bad)
-    assert "real-time priority" in _verdict(dict(base, realtime=False))
+    assert verdict(bad).startswith("unfit") and "24 block deadlines a minute" in verdict(bad)
+    assert "real-time priority" in verdict(dict(base, realtime=False))
 
 
 def test_play_stop_line_names_the_xrun_causes():
-    from sheafsynth.host.live.play import _xrun_summary
+    from sheafsynth.host.live.report import xrun_summary
 
-    assert _xrun_summary({"xruns": 0, "callbacks_blocked": 0}) == "0 xruns"
+    assert xrun_summary({"xruns": 0, "callbacks_blocked": 0}) == "0 xruns"
     machine = {"xruns_explained": 3, "xruns_preempted": 1, "xruns_slow_callback": 0, "xruns_elsewhere": 1}
-    assert _xrun_summary({"xruns": 5, "machine": machine, "callbacks_blocked": 0}) == (
+    assert xrun_summary({"xruns": 5, "machine": machine, "callbacks_blocked": 0}) == (
         "5 xruns (4 the machine's, 0 after slow callbacks, 1 elsewhere)")
-    assert "BLOCKED in 2 callbacks" in _xrun_summary({"xruns": 1, "callbacks_blocked": 2})
+    assert "BLOCKED in 2 callbacks" in xrun_summary({"xruns": 1, "callbacks_blocked": 2})
