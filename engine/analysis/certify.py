@@ -159,7 +159,8 @@ def _symbols(b: Block) -> set[str]:
 def _gain_cells(prog: StepProgram, box: Box, fixed_delays: bool):
     """Per-block inputs to the small-gain route (cells and wires at the corners)."""
     cs = corners(dict(box)) if box else [{}]
-    cells, special = [], {}
+    cells: list[GainCell] = []
+    special: dict[str, CellGain | str] = {}
     cyclic = cyclic_blocks(prog)
     for b in prog.blocks:
         if b.is_delay:
@@ -205,7 +206,7 @@ def certify_network(prog: StepProgram, box: Box, notes) -> NetworkCertificate:
     for v in special.values():
         if isinstance(v, str):
             return NetworkCertificate(False, "none", failing=v, notes=notes_out)
-    results = {}
+    results: dict[str, tuple[float | None, str | None]] = {}
     for norm in ("l2", "linf"):
         gains, missing = [], None
         for c in cells:

@@ -146,7 +146,7 @@ class CellGain:
 
     cell: str
     gain: float
-    norm: Norm
+    norm: Norm | Literal["any"]   # "any": holds in every norm (a stand-in until the norm is chosen)
     route: str
 
 
