@@ -8,7 +8,7 @@ import os
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.host.bench.context import BLOCK, RATE, BenchContext, Kernel, cpu_clock
 from sheafsynth.host.bench.stats import interleave, spread
-from sheafsynth.host.live.runtime import EV_PARAM, HostRuntime
+from sheafsynth.host.live.runtime import HostRuntime
 
 __all__ = ["host_overhead"]
 
@@ -84,7 +84,7 @@ def _live_overhead(ctx: BenchContext, k: Kernel) -> dict:
         for _ in range(loops // 50 or 1):
             t0 = cpu_clock()
             for _ in range(50):
-                rt.push(EV_PARAM, 0, 0, 0.99)
+                rt.push(V.EV_PARAM, 0, 0, 0.99)
             tot += cpu_clock() - t0
             rt.process(BLOCK, rt.now_ns())
         return tot / ((loops // 50 or 1) * 50)

@@ -10,6 +10,12 @@ Thread rules (the C side relies on them):
   * one thread reads the record ring (``read_record``);
   * everything else runs on one control thread (the main thread).
 Build (``load_runtime``) in the main thread before any stream starts.
+
+Every C status code of the runtime and the stall probe goes through
+:func:`check_status` (pointers through :func:`check_created`): one place
+turns them into AudioError (or a subclass) naming what failed.  Event
+codes are the IR's (``sheafsynth.engine.ir.voicing``; csrc/ss_abi.h
+carries the same to C).
 """
 
 from __future__ import annotations
@@ -21,9 +27,9 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from sheafsynth.engine.locations import CSRC_DIR
 from sheafsynth.engine.backends.c.build import CompiledModule, compile_module
 from sheafsynth.engine.errors import AudioError, BuildError
+from sheafsynth.engine.locations import CSRC_DIR
 
 __all__ = [
     "HostRuntime",
@@ -31,19 +37,9 @@ __all__ = [
     "SlowCallback",
     "KernelSwitchError",
     "load_runtime",
-    "EV_NOTE_ON", "EV_NOTE_OFF", "EV_PARAM", "EV_BEND", "EV_SUSTAIN",
-    "EV_ALL_NOTES_OFF", "EV_ALL_SOUND_OFF", "EV_RELEASE_ALL",
+    "check_status",
+    "check_created",
 ]
-
-# Event types, as in csrc/ss_abi.h.
-EV_NOTE_ON = 1
-EV_NOTE_OFF = 2
-EV_PARAM = 3
-EV_BEND = 4
-EV_SUSTAIN = 5
-EV_ALL_NOTES_OFF = 6
-EV_ALL_SOUND_OFF = 7
-EV_RELEASE_ALL = 8
 
 _PA_TYPES = """
 typedef double PaTime;
@@ -58,10 +54,15 @@ typedef struct PaStreamCallbackTimeInfo {
 _HEADERS = ("host_rt.h", "stall_probe.h")
 _SOURCE = '#include "host_rt.c"\n#include "stall_probe.c"\n'
 
-_ERR_BUSY = -10
-_ERR_FULL = -11
-_ERR_ARG = -12
-_ERR_RETRY = -13
+# What each error status (csrc/host_rt.h, csrc/stall_probe.h) means; the values come from the compiled module.
+_STATUS_TEXT = {
+    "SS_HOST_ERR_BUSY": "a kernel switch is still pending",
+    "SS_HOST_ERR_FULL": "the event ring is full",
+    "SS_HOST_ERR_ARG": "bad argument",
+    "SS_HOST_ERR_RETRY": "the snapshot raced the audio thread",
+    "SS_PROBE_ERR_ARG": "bad argument to the stall probe",
+    "SS_PROBE_ERR_THREAD": "no probe thread could be started",
+}
 
 _runtime_lock = threading.Lock()
 _runtime: list[CompiledModule] = []
@@ -69,6 +70,25 @@ _runtime: list[CompiledModule] = []
 
 class KernelSwitchError(AudioError):
     """A kernel switch could not be handed to the audio thread."""
+
+
+def check_status(lib: Any, code: int, what: str, error: type[AudioError] = AudioError) -> int:
+    """The one choke point for C status codes: ``code`` when it is >= 0, else ``error``
+    saying ``what`` failed and why (the SS_HOST_ERR_* meaning, or the raw code)."""
+    code = int(code)
+    if code >= 0:
+        return code
+    for name, text in _STATUS_TEXT.items():
+        if int(getattr(lib, name)) == code:
+            raise error(f"{what}: {text} ({name})")
+    raise error(f"{what}: failed with status {code}")
+
+
+def check_created(ffi: Any, ptr: Any, what: str, error: type[AudioError] = AudioError) -> Any:
+    """``ptr`` from a C constructor, or ``error(what)`` when it is NULL."""
+    if ptr == ffi.NULL:
+        raise error(what)
+    return ptr
 
 
 def _cdef_part(name: str) -> str:
@@ -215,9 +235,9 @@ class HostRuntime:
         self.ffi = self._mod.ffi
         self.lib = self._mod.lib
         rec_frames = int(record_seconds * rate)
-        ptr = self.lib.ss_host_create(float(rate), max_block, channels, event_capacity, rec_frames)
-        if ptr == self.ffi.NULL:
-            raise AudioError("could not create the audio runtime (out of memory?)")
+        ptr = check_created(self.ffi, self.lib.ss_host_create(float(rate), max_block, channels, event_capacity,
+                                                              rec_frames),
+                            "could not create the audio runtime (out of memory?)")
         self._ptr = self.ffi.gc(ptr, self.lib.ss_host_destroy)
         self.rate = float(rate)
         self.max_block = max_block
@@ -240,20 +260,19 @@ class HostRuntime:
     # -- configuration -----------------------------------------------------
     def set_rate(self, rate: float) -> None:
         """Set the sample rate in Hz; only while no stream runs."""
-        if self.lib.ss_host_set_rate(self._ptr, float(rate)) != 0:
-            raise AudioError(f"rate={rate!r}: must be a positive sample rate in Hz")
+        check_status(self.lib, self.lib.ss_host_set_rate(self._ptr, float(rate)),
+                     f"rate={rate!r}: must be a positive sample rate in Hz")
         self.rate = float(rate)
 
     def set_ceiling(self, ceiling: float) -> None:
         """Safety clip level, linear full scale (0 < ceiling <= 4)."""
-        if self.lib.ss_host_set_ceiling(self._ptr, float(ceiling)) != 0:
-            raise AudioError(f"ceiling={ceiling!r}: must be within (0, 4] (linear)")
+        check_status(self.lib, self.lib.ss_host_set_ceiling(self._ptr, float(ceiling)),
+                     f"ceiling={ceiling!r}: must be within (0, 4] (linear)")
 
     def set_fade(self, timeout_s: float, ramp_s: float) -> None:
         """A fading kernel rings at most timeout_s seconds, then ramps out in ramp_s s."""
-        if self.lib.ss_host_set_fade(self._ptr, float(timeout_s), float(ramp_s)) != 0:
-            raise AudioError(f"fade timeout={timeout_s!r} s, ramp={ramp_s!r} s: "
-                             "need 0 <= timeout <= 3600 and 0 < ramp <= 10")
+        check_status(self.lib, self.lib.ss_host_set_fade(self._ptr, float(timeout_s), float(ramp_s)),
+                     f"fade timeout={timeout_s!r} s, ramp={ramp_s!r} s: need 0 <= timeout <= 3600 and 0 < ramp <= 10")
 
     def set_recording(self, on: bool) -> None:
         """Start or stop copying the output into the record ring."""
@@ -281,15 +300,14 @@ class HostRuntime:
         deadline = time.monotonic() + wait_s
         while True:
             gen = self.lib.ss_host_set_kernel(self._ptr, r, s)
-            if gen != _ERR_BUSY:
+            if gen != self.lib.SS_HOST_ERR_BUSY:
                 break
             if time.monotonic() >= deadline:
                 raise KernelSwitchError(
                     f"the previous kernel switch was not taken within {wait_s} s: "
                     "is the audio stream running?")
             time.sleep(0.002)
-        if gen < 0:
-            raise KernelSwitchError(f"set_kernel refused the kernel (code {gen})")
+        gen = check_status(self.lib, gen, "set_kernel refused the kernel", KernelSwitchError)
         self._keep[int(gen)] = keep if keep is not None else (render, state)
         self.collect()
         return int(gen)
@@ -311,13 +329,13 @@ class HostRuntime:
         Only one thread may push.  Does not block.
         """
         r = self.lib.ss_host_push(self._ptr, type_, a, b, value)
-        return None if r < 0 else int(r)
+        return None if r == self.lib.SS_HOST_ERR_FULL else check_status(self.lib, r, "push event")
 
     def push_at(self, stamp_ns: int, type_: int, a: int = 0, b: int = 0,
                 value: float = 0.0) -> int | None:
         """Queue one event with an explicit CLOCK_MONOTONIC stamp (ns)."""
         r = self.lib.ss_host_push_at(self._ptr, int(stamp_ns), type_, a, b, value)
-        return None if r < 0 else int(r)
+        return None if r == self.lib.SS_HOST_ERR_FULL else check_status(self.lib, r, "push event")
 
     def now_ns(self) -> int:
         """CLOCK_MONOTONIC in ns, the clock of event stamps."""
@@ -343,7 +361,9 @@ class HostRuntime:
     def counters(self) -> HostCounters:
         """A consistent snapshot of the counters."""
         for _ in range(100):
-            if self.lib.ss_host_snapshot(self._ptr, self._snap) == 0:
+            rc = self.lib.ss_host_snapshot(self._ptr, self._snap)
+            if rc != self.lib.SS_HOST_ERR_RETRY:
+                check_status(self.lib, rc, "read the audio counters")
                 break
             time.sleep(0.0005)
         else:
@@ -358,8 +378,8 @@ class HostRuntime:
         """CLOCK_MONOTONIC start times (ns) of the callbacks flagged with an xrun (the first 1024)."""
         cap = int(self.lib.SS_HOST_XRUN_LOG)
         buf = self.ffi.new("int64_t[]", cap)
-        n = self.lib.ss_host_xrun_times(self._ptr, buf, cap)
-        return [int(buf[i]) for i in range(max(0, n))]
+        n = check_status(self.lib, self.lib.ss_host_xrun_times(self._ptr, buf, cap), "read the xrun log")
+        return [int(buf[i]) for i in range(n)]
 
     def slow_callbacks(self) -> list[SlowCallback]:
         """The callbacks longer than half a block period (the first 1024), oldest first."""
@@ -367,9 +387,10 @@ class HostRuntime:
         start = self.ffi.new("int64_t[]", cap)
         dur = self.ffi.new("int64_t[]", cap)
         cpu = self.ffi.new("int64_t[]", cap)
-        n = self.lib.ss_host_slow_callbacks(self._ptr, start, dur, cpu, cap)
+        n = check_status(self.lib, self.lib.ss_host_slow_callbacks(self._ptr, start, dur, cpu, cap),
+                         "read the slow-callback log")
         return [SlowCallback(int(start[i]), int(dur[i]), int(cpu[i]) if cpu[i] >= 0 else None)
-                for i in range(max(0, n))]
+                for i in range(n)]
 
     def process(self, frames: int, now_ns: int, flags: int = 0) -> np.ndarray:
         """Run one callback by hand at CLOCK_MONOTONIC time now_ns.

@@ -26,6 +26,7 @@ import dataclasses
 from typing import Iterable, Sequence
 
 from sheafsynth.engine.errors import AudioError
+from sheafsynth.host.live.runtime import check_created, check_status, load_runtime
 
 __all__ = ["StallProbe", "ProbeReading", "Stall", "explain_xruns", "explain_coverage", "xrun_causes", "CAUSES", "STALL_FRACTION",
            "EXPLAIN_WINDOW_S", "PROBE_PRIORITY", "PLAY_TICKS"]
@@ -116,8 +117,6 @@ class StallProbe:
             raise ValueError(f"probe priority {priority!r} must be within 1..99")
         if not 1 <= int(ticks_per_period) <= 16:
             raise ValueError(f"probe ticks per period {ticks_per_period!r} must be within 1..16")
-        from sheafsynth.host.live.runtime import load_runtime
-
         mod = load_runtime()
         self.ffi, self.lib = mod.ffi, mod.lib
         self.period_s = float(period_s)
@@ -131,11 +130,9 @@ class StallProbe:
     def start(self) -> "StallProbe":
         if self._ptr is not None:
             return self
-        ptr = self.lib.ss_probe_start(int(round(self.tick_s * 1e9)), int(round(self.stall_s * 1e9)),
-                                      self.priority)
-        if ptr == self.ffi.NULL:
-            raise ProbeError("the stall probe could not start a thread")
-        self._ptr = ptr
+        self._ptr = check_created(self.ffi, self.lib.ss_probe_start(int(round(self.tick_s * 1e9)),
+                                                                    int(round(self.stall_s * 1e9)), self.priority),
+                                  "the stall probe could not start a thread", ProbeError)
         return self
 
     def stop(self) -> None:
@@ -157,7 +154,7 @@ class StallProbe:
         if self._ptr is None:
             raise ProbeError("the stall probe is not running")
         st = self.ffi.new("ss_probe_stats *")
-        self.lib.ss_probe_read(self._ptr, st)
+        check_status(self.lib, self.lib.ss_probe_read(self._ptr, st), "read the stall probe", ProbeError)
         edges = tuple(float(self.lib.ss_probe_bin_edges_us[i]) for i in range(self.lib.SS_PROBE_BINS - 1))
         return ProbeReading(
             period_s=self.period_s, tick_s=self.tick_s, stall_threshold_s=self.stall_s, wakes=int(st.wakes),
@@ -172,8 +169,9 @@ class StallProbe:
         d = self.ffi.new("int64_t[]", limit)
         late = self.ffi.new("int64_t[]", limit)
         cpu = self.ffi.new("int32_t[]", limit)
-        n = self.lib.ss_probe_stalls(self._ptr, d, late, cpu, limit)
-        out = [Stall(int(d[i]), int(late[i]), int(cpu[i])) for i in range(max(0, n))]
+        n = check_status(self.lib, self.lib.ss_probe_stalls(self._ptr, d, late, cpu, limit),
+                         "read the stall log", ProbeError)
+        out = [Stall(int(d[i]), int(late[i]), int(cpu[i])) for i in range(n)]
         out.sort(key=lambda s: s.deadline_ns)
         return out
 

@@ -12,7 +12,7 @@ import pytest
 import soundfile
 
 from sheafsynth.engine.errors import AudioError
-from sheafsynth.host.live import runtime as rtmod
+from sheafsynth.engine.ir.voicing import EV_PARAM, EV_RELEASE_ALL
 from sheafsynth.host.live.audio import AudioOutput, list_audio_devices
 
 pytestmark = pytest.mark.live
@@ -85,7 +85,7 @@ def test_events_arrive_at_expected_block_and_offset(output, make_kernel):
 
     def midi_thread():  # the only producer
         for i in range(60):
-            s = output.push(rtmod.EV_PARAM, i, 0, float(i))
+            s = output.push(EV_PARAM, i, 0, float(i))
             assert s is not None
             stamps[i] = s
             time.sleep(0.0037 + 0.0011 * (i % 3))
@@ -106,7 +106,7 @@ def test_events_arrive_at_expected_block_and_offset(output, make_kernel):
         i = state.echo_a[k]
         block, offset = state.echo_block[k], state.echo_offset[k]
         s = stamps[i]
-        assert state.echo_type[k] == rtmod.EV_PARAM and state.echo_value[k] == float(i)
+        assert state.echo_type[k] == EV_PARAM and state.echo_value[k] == float(i)
         assert 0 <= offset < BLOCK
         # delivered by the first block that started after the stamp
         assert state.render_ns[block] > s
@@ -140,7 +140,7 @@ def test_switch_between_kernels_leaves_no_gap(output, make_kernel, tmp_path):
     assert _longest_zero_run(y) <= 4, "the output must not drop out during the switch"
     assert c.generation == gb and c.retired >= ga and not c.fading_active
     assert c.switches >= 2 and c.fade_timeouts == 0
-    assert [sa.echo_type[k] for k in range(sa.n_echo)] == [rtmod.EV_RELEASE_ALL]
+    assert [sa.echo_type[k] for k in range(sa.n_echo)] == [EV_RELEASE_ALL]
     assert sb.n_echo == 0
     n = len(y)
     head = y[: int(0.4 * rate)].astype(np.float64)

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 from sheafsynth.engine.errors import AudioError
+from sheafsynth.engine.ir.voicing import EV_NOTE_OFF, EV_NOTE_ON, EV_PARAM, EV_RELEASE_ALL
 from sheafsynth.host.live import runtime as rtmod
 from sheafsynth.host.live.runtime import HostRuntime, KernelSwitchError
 
@@ -60,10 +61,10 @@ def test_event_offset_is_stamp_relative_to_previous_block(rt, make_kernel):
     rt.set_kernel(render, state)
     rt.process(BLOCK, T0)                      # block 0 starts at T0
     stamp = T0 + 1_000_000                     # 1 ms after block 0 began
-    rt.push_at(stamp, rtmod.EV_NOTE_ON, 60, 100)
+    rt.push_at(stamp, EV_NOTE_ON, 60, 100)
     rt.process(BLOCK, T0 + PERIOD_NS)          # block 1 delivers it
     # 1 ms at 48 kHz = 48 samples: common practice (no source)
-    assert echoes(state) == [(1, 48, rtmod.EV_NOTE_ON, 60)]
+    assert echoes(state) == [(1, 48, EV_NOTE_ON, 60)]
     c = rt.counters()
     assert (c.events_pushed, c.events_delivered, c.events_late) == (1, 1, 0)
 
@@ -72,20 +73,20 @@ def test_event_stamped_during_callback_waits_for_next_block(rt, make_kernel):
     render, state = make_kernel(RATE, 100.0)
     rt.set_kernel(render, state)
     rt.process(BLOCK, T0)
-    rt.push_at(T0 + PERIOD_NS + 10, rtmod.EV_NOTE_ON, 61, 100)  # after block 1 began
+    rt.push_at(T0 + PERIOD_NS + 10, EV_NOTE_ON, 61, 100)  # after block 1 began
     rt.process(BLOCK, T0 + PERIOD_NS)
     assert echoes(state) == []
     rt.process(BLOCK, T0 + 2 * PERIOD_NS)
-    assert echoes(state) == [(2, 0, rtmod.EV_NOTE_ON, 61)]
+    assert echoes(state) == [(2, 0, EV_NOTE_ON, 61)]
 
 
 def test_late_event_goes_to_offset_zero_and_is_counted(rt, make_kernel):
     render, state = make_kernel(RATE, 100.0)
     rt.set_kernel(render, state)
     rt.process(BLOCK, T0)
-    rt.push_at(T0 - 5 * PERIOD_NS, rtmod.EV_NOTE_OFF, 62)
+    rt.push_at(T0 - 5 * PERIOD_NS, EV_NOTE_OFF, 62)
     rt.process(BLOCK, T0 + PERIOD_NS)
-    assert echoes(state) == [(1, 0, rtmod.EV_NOTE_OFF, 62)]
+    assert echoes(state) == [(1, 0, EV_NOTE_OFF, 62)]
     assert rt.counters().events_late == 1
 
 
@@ -94,8 +95,8 @@ def test_offsets_clamped_and_sorted(rt, make_kernel):
     rt.set_kernel(render, state)
     rt.process(BLOCK, T0)
     # a callback that comes late: the gap is 3 periods, stamps spread over it
-    rt.push_at(T0 + 2 * PERIOD_NS, rtmod.EV_NOTE_ON, 1, 1)   # beyond the block: clamped
-    rt.push_at(T0 + 500_000, rtmod.EV_NOTE_ON, 2, 1)          # pushed later, earlier stamp
+    rt.push_at(T0 + 2 * PERIOD_NS, EV_NOTE_ON, 1, 1)   # beyond the block: clamped
+    rt.push_at(T0 + 500_000, EV_NOTE_ON, 2, 1)          # pushed later, earlier stamp
     rt.process(BLOCK, T0 + 3 * PERIOD_NS)
     got = echoes(state)
     assert [(o, a) for _, o, _, a in got] == [(24, 2), (BLOCK - 1, 1)]
@@ -109,7 +110,7 @@ def test_long_device_block_is_split_and_offsets_rebased(make_kernel):
     period = frames * 1_000_000_000 // RATE
     rt.process(frames, T0)
     for off in (10, 70, 200):
-        rt.push_at(T0 + off * 1_000_000_000 // RATE + 1000, rtmod.EV_PARAM, off, 0, 0.5)
+        rt.push_at(T0 + off * 1_000_000_000 // RATE + 1000, EV_PARAM, off, 0, 0.5)
     out = rt.process(frames, T0 + period)
     assert out.shape == (frames, 1)
     # kernel block 4 = chunk 0 of the second callback, etc.
@@ -119,7 +120,7 @@ def test_long_device_block_is_split_and_offsets_rebased(make_kernel):
 
 def test_event_ring_full_drops_and_counts(make_kernel):
     rt = HostRuntime(RATE, BLOCK, 1, event_capacity=4)
-    results = [rt.push_at(T0, rtmod.EV_NOTE_ON, i, 1) for i in range(6)]
+    results = [rt.push_at(T0, EV_NOTE_ON, i, 1) for i in range(6)]
     assert [r is not None for r in results] == [True] * 4 + [False] * 2
     c = rt.counters()
     assert (c.events_pushed, c.events_dropped) == (4, 2)
@@ -127,7 +128,7 @@ def test_event_ring_full_drops_and_counts(make_kernel):
 
 def test_events_without_kernel_are_unrouted(rt):
     rt.process(BLOCK, T0)
-    rt.push_at(T0 + 1000, rtmod.EV_NOTE_ON, 60, 1)
+    rt.push_at(T0 + 1000, EV_NOTE_ON, 60, 1)
     rt.process(BLOCK, T0 + PERIOD_NS)
     assert rt.counters().events_unrouted == 1
 
@@ -147,7 +148,7 @@ def test_switch_fades_old_kernel_without_gap(rt, make_kernel):
         if not rt.counters().fading_active:
             break
     # the fading kernel got exactly one release, at the first switched block
-    assert [(b, o, ty) for b, o, ty, _ in echoes(sa)] == [(1, 0, rtmod.EV_RELEASE_ALL)]
+    assert [(b, o, ty) for b, o, ty, _ in echoes(sa)] == [(1, 0, EV_RELEASE_ALL)]
     assert echoes(sb) == []
     first = outs[0]
     ea = 0.4 * np.sin(2 * np.pi * 440.0 * np.arange(BLOCK, 2 * BLOCK) / RATE) * 0.99 ** np.arange(1, BLOCK + 1)
@@ -249,6 +250,17 @@ def test_safety_clip_at_ceiling(rt, make_kernel):
     assert c.clipped > 0 and c.peak == pytest.approx(0.5)
     with pytest.raises(AudioError, match="ceiling"):
         rt.set_ceiling(0.0)
+
+
+def test_c_status_codes_become_audio_errors_that_name_them(rt):
+    """Every C status goes through one choke point; the codes are csrc/host_rt.h's #defines."""
+    with pytest.raises(AudioError, match=r"rate=0\.0.*bad argument \(SS_HOST_ERR_ARG\)"):
+        rt.set_rate(0.0)
+    with pytest.raises(AudioError, match="fade.*SS_HOST_ERR_ARG"):
+        rt.set_fade(-1.0, 0.01)
+    assert rtmod.check_status(rt.lib, 7, "anything") == 7
+    with pytest.raises(KernelSwitchError, match="what failed: failed with status -99"):
+        rtmod.check_status(rt.lib, -99, "what failed", KernelSwitchError)
 
 
 def test_kernel_error_gives_silence_and_is_counted(rt, make_kernel):
