@@ -150,3 +150,32 @@ class MidiSender:
         time.sleep(0.3)          # let the last messages leave in the next JACK cycles
         self.mo.close_port()
         self.mo.delete()
+
+
+def send_timeline(target: str, timeline, client: str = "sshard-send") -> float:
+    """Connect a MidiSender to ``target``, play ``timeline`` ((s, bytes) items) on time and close it;
+    returns the monotonic start (s) the times count from."""
+    sender = MidiSender(target, client)
+    try:
+        return sender.play(timeline)
+    finally:
+        sender.close()
+
+
+def jack_midi_sources(client: str) -> list[str]:
+    """The JACK MIDI output ports listed now, seen through a throw-away input client named ``client``."""
+    import rtmidi
+
+    mi = rtmidi.MidiIn(rtapi=rtmidi.API_UNIX_JACK, name=client)
+    try:
+        return mi.get_ports()
+    finally:
+        mi.delete()
+
+
+def wait_port_gone(name: str, client: str, timeout: float = 10.0) -> None:
+    """Wait until no JACK MIDI port whose name contains ``name`` is listed (fails after ``timeout`` s)."""
+    deadline = time.monotonic() + timeout
+    while any(name in n for n in jack_midi_sources(client)):
+        assert time.monotonic() < deadline, f"the killed source's port {name!r} did not go away"
+        time.sleep(0.05)

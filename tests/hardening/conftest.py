@@ -27,22 +27,23 @@ import pytest
 from tests.live import LIVE_BLOCK, LIVE_RATE, MidiSender, PlayProcess
 
 
+def _env_number(name: str, default: float, floor: float, kind: type = float):
+    """``kind(os.environ[name])`` (``default`` when unset or not a number), at least ``floor``."""
+    try:
+        value = kind(os.environ.get(name, str(default)))
+    except ValueError:
+        value = kind(default)
+    return max(kind(floor), value)
+
+
 def fuzz_examples() -> int:
     """Number of presets one fuzz run checks (env SHEAFSYNTH_FUZZ_EXAMPLES, default 2000)."""
-    try:
-        n = int(os.environ.get("SHEAFSYNTH_FUZZ_EXAMPLES", "2000"))
-    except ValueError:
-        n = 2000
-    return max(20, n)
+    return int(_env_number("SHEAFSYNTH_FUZZ_EXAMPLES", 2000, 20, int))
 
 
 def soak_seconds() -> float:
     """Soak length in s (env SHEAFSYNTH_SOAK_SECONDS, default 60)."""
-    try:
-        s = float(os.environ.get("SHEAFSYNTH_SOAK_SECONDS", "60"))
-    except ValueError:
-        s = 60.0
-    return max(15.0, s)
+    return float(_env_number("SHEAFSYNTH_SOAK_SECONDS", 60.0, 15.0))
 
 
 # ---------------------------------------------------------------- time limits

@@ -29,7 +29,7 @@ import pytest
 from sheafsynth.engine.errors import AudioError
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.program import GUARD_LIMIT, LIMITER_CEILING
-from tests.live import REPO
+from tests.live import REPO, wait_port_gone
 
 RATE = 48000
 BLOCK = 256
@@ -184,16 +184,6 @@ while True:                       # a note every 20 ms until killed
 """
 
 
-def _jack_midi_sources() -> list[str]:
-    import rtmidi
-
-    mi = rtmidi.MidiIn(rtapi=rtmidi.API_UNIX_JACK, name="sshard-watch")
-    try:
-        return mi.get_ports()
-    finally:
-        mi.delete()
-
-
 @pytest.mark.live
 @pytest.mark.slow
 def test_midi_port_vanishing_mid_stream_three_times_is_survived(live, tmp_path):
@@ -212,10 +202,7 @@ def test_midi_port_vanishing_mid_stream_three_times_is_survived(live, tmp_path):
             time.sleep(1.0)
             src.send_signal(signal.SIGKILL)
             src.wait(10)
-            deadline = time.monotonic() + 10
-            while any("sshard-src" in n for n in _jack_midi_sources()):
-                assert time.monotonic() < deadline, "the killed source's port did not go away"
-                time.sleep(0.05)
+            wait_port_gone("sshard-src", "sshard-watch")
             time.sleep(0.4)
             assert play.proc.poll() is None, "the host stopped when its MIDI source vanished"
             src = start_source()

@@ -27,6 +27,7 @@ from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.program import LIMITER_CEILING
 from sheafsynth.host.controls import MidiTranslator
 from sheafsynth.host.live.midi import parse
+from tests.live import send_timeline
 
 # ---------------------------------------------------------------- the spec as an oracle
 
@@ -278,11 +279,7 @@ def test_hostile_midi_into_a_running_play(live, tmp_path):
                      virtual="sshard-hostile")
     (tmp_path / "bank").mkdir()
     play.wait_ready()
-    sender = live.Sender("sshard-hostile")
-    try:
-        sender.play(timeline)
-    finally:
-        sender.close()
+    send_timeline("sshard-hostile", timeline)
     rc = play.wait()
     assert rc == 0, play.log()
     assert "Traceback" not in "\n".join(play.err)

@@ -27,6 +27,7 @@ import pytest
 from sheafsynth.engine.ir.program import LIMITER_CEILING
 from tests.conftest import midi_loss_explained, realtime_criteria, host_xruns
 from tests.hardening.conftest import soak_seconds
+from tests.live import send_timeline
 
 pytestmark = [pytest.mark.live, pytest.mark.slow]
 
@@ -101,11 +102,9 @@ def test_soak_300_events_per_second(live, tmp_path):
 
     sampler = threading.Thread(target=sample, daemon=True)
     sampler.start()
-    sender = live.Sender("sshard-soak")
     try:
-        sender.play(timeline)
+        send_timeline("sshard-soak", timeline)
     finally:
-        sender.close()
         stop.set()
         sampler.join(5)
     rc = play.wait(timeout=120)

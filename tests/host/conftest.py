@@ -9,12 +9,8 @@ from sheafsynth.engine.backends.c.build import compile_module
 # A test kernel implementing ss_render_fn with an ss_counters-first state.
 # It plays a sine (a drone, or gated by notes), echoes every event it gets
 # into arrays, and stamps CLOCK_MONOTONIC at the start of every render.
-TEST_KERNEL_CDEF = """
-typedef struct ss_event { int32_t offset; int32_t type; int32_t a; int32_t b; float value; } ss_event;
-typedef struct ss_counters {
-    uint64_t blocks; uint64_t frames; uint32_t voices_active; uint32_t voices_stolen;
-    uint32_t guard_resets; uint32_t events_ignored; float peak; float limiter_gain;
-} ss_counters;
+# The state struct, declared once for both the cdef and the C source.
+TK_STATE_DECL = """
 #define TK_ECHO 4096
 #define TK_BLOCKS 8192
 typedef struct tk_state {
@@ -39,7 +35,15 @@ typedef struct tk_state {
     int64_t render_ns[TK_BLOCKS];
     int32_t render_frames[TK_BLOCKS];
 } tk_state;
-int tk_render(void *state, const ss_event *events, int n_events, float *out, int frames);
+"""
+
+TEST_KERNEL_CDEF = """
+typedef struct ss_event { int32_t offset; int32_t type; int32_t a; int32_t b; float value; } ss_event;
+typedef struct ss_counters {
+    uint64_t blocks; uint64_t frames; uint32_t voices_active; uint32_t voices_stolen;
+    uint32_t guard_resets; uint32_t events_ignored; float peak; float limiter_gain;
+} ss_counters;
+""" + TK_STATE_DECL + """int tk_render(void *state, const ss_event *events, int n_events, float *out, int frames);
 void tk_init(tk_state *s, double rate, double freq, float amp, int drone);
 """
 
@@ -48,31 +52,7 @@ TEST_KERNEL_SOURCE = r"""
 #include <string.h>
 #include <time.h>
 #include "ss_abi.h"
-#define TK_ECHO 4096
-#define TK_BLOCKS 8192
-typedef struct tk_state {
-    ss_counters counters;
-    double freq;
-    double rate;
-    double phase;
-    float amp;
-    float env;
-    float release_mul;
-    int drone;
-    int gate;
-    int ignore_release;
-    int emit_nan;
-    int fail;
-    int n_echo;
-    int32_t echo_block[TK_ECHO];
-    int32_t echo_offset[TK_ECHO];
-    int32_t echo_type[TK_ECHO];
-    int32_t echo_a[TK_ECHO];
-    float echo_value[TK_ECHO];
-    int64_t render_ns[TK_BLOCKS];
-    int32_t render_frames[TK_BLOCKS];
-} tk_state;
-
+""" + TK_STATE_DECL + r"""
 void tk_init(tk_state *s, double rate, double freq, float amp, int drone)
 {
     memset(s, 0, sizeof(*s));

@@ -29,7 +29,7 @@ import pytest
 
 from sheafsynth.engine.errors import InputError
 from tests.conftest import midi_loss_explained, realtime_criteria
-from tests.live import MidiSender, PlayProcess
+from tests.live import MidiSender, PlayProcess, send_timeline, wait_port_gone
 from tests.measure import cents, fundamental, spectral_centroid
 
 pytestmark = pytest.mark.live
@@ -226,11 +226,7 @@ def main_session(jack_server, tmp_path_factory):
                 seconds=T_END + 3.0)
     with portaudio_closed_here():
         play.wait_ready()
-        sender = Sender("sstest-main")
-        try:
-            sender.play(tl)
-        finally:
-            sender.close()
+        send_timeline("sstest-main", tl, client="sstest-send")
         rc = play.wait()
     assert rc == 0, play.log()
     rep, x = play.results()
@@ -439,11 +435,7 @@ def test_soak_300_events_per_second(jack_server, fewer_jack_clients, tmp_path):
     play = Play(tmp_path, ["lantern-harp", "--virtual-midi", "sstest-soak", "--bank-dir", str(bank_dir)],
                 seconds=seconds + 2.0)
     play.wait_ready()
-    sender = Sender("sstest-soak")
-    try:
-        sender.play(tl)
-    finally:
-        sender.close()
+    send_timeline("sstest-soak", tl, client="sstest-send")
     assert play.wait() == 0, play.log()
     rep, x = play.results()
     assert rep["midi"]["malformed"] == 0
@@ -491,16 +483,6 @@ class SenderProcess:
         self.proc.wait(10)
 
 
-def _jack_midi_sources() -> list[str]:
-    import rtmidi
-
-    mi = rtmidi.MidiIn(rtapi=rtmidi.API_UNIX_JACK, name="sstest-watch")
-    try:
-        return mi.get_ports()
-    finally:
-        mi.delete()
-
-
 def test_sender_port_killed_and_restarted(jack_server, tmp_path):
     """The MIDI source vanishes (its process is killed) and comes back: the
     host keeps playing and receives again."""
@@ -513,10 +495,7 @@ def test_sender_port_killed_and_restarted(jack_server, tmp_path):
         play.wait_ready()
         first.note(69)
         first.kill()
-        deadline = time.monotonic() + 10
-        while any("sstest-src" in n for n in _jack_midi_sources()):
-            assert time.monotonic() < deadline, "the killed sender's port did not go away"
-            time.sleep(0.05)
+        wait_port_gone("sstest-src", "sstest-watch")
         time.sleep(0.5)
         assert play.proc.poll() is None, "the host stopped when its MIDI source vanished"
         second = SenderProcess()
