@@ -1,5 +1,8 @@
 """The project's exception family: every user-facing failure is one of these."""
 
+__all__ = ["SheafsynthError", "PresetError", "InputError", "BuildError", "AudioError"]
+
+
 
 class SheafsynthError(Exception):
     """Base class: the CLI turns any of these into a one-line message."""

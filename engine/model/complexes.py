@@ -118,6 +118,8 @@ class CellComplex:
         check_boundary(boundary, path)
         if boundary == "free":
             return np.arange(self.n_vertices)
+        if self.boundary is None:
+            raise PresetError("boundary \"fixed\" needs a rim; this complex marks none", path)
         kept = np.flatnonzero(~self.boundary)
         if kept.size == 0:
             raise PresetError("boundary \"fixed\" clamps every vertex; no state is left", path)
@@ -198,8 +200,11 @@ def grid_complex(m: int, n: int, wrap: str = "none", path: str = "complex") -> C
     wrap0 = wrap == "torus"
     wrap1 = wrap in ("torus", "cylinder", "mobius")
     vid = lambda i, j: i * n + j  # noqa: E731
-    edges, seam, axis = [], [], []
-    h, v = {}, {}                   # (i, j) -> edge id leaving (i, j) along axis 1 / 0
+    edges: list[tuple[int, int]] = []
+    seam: list[int] = []
+    axis: list[int] = []
+    h: dict[tuple[int, int], int] = {}
+    v: dict[tuple[int, int], int] = {}                   # (i, j) -> edge id leaving (i, j) along axis 1 / 0
     for i in range(m):
         for j in range(n - 1):
             h[i, j] = len(edges)

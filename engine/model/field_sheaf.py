@@ -56,7 +56,7 @@ from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.model.complexes import CellComplex, check_boundary, complex_from_spec
 from sheafsynth.engine.model.dense import DENSE_MAX
 from sheafsynth.engine.model.json_checks import index_arg, int_at_least, is_int, is_num, no_extra_keys
-from sheafsynth.engine.model.spectra import gershgorin_bound, largest_eigenvalue, lowest_eigenvalues
+from sheafsynth.engine.model.spectra import gershgorin_bound, lowest_eigenvalues
 
 __all__ = ["CONSISTENCY", "FaceHolonomy", "FieldSheaf", "field_sheaf_from_cell", "check_consistency",
            "seam_scale"]
@@ -302,14 +302,6 @@ class FieldSheaf:
         return (lap @ lap).tocsr()
 
     # ---- spectra
-    def mu_max_bound(self, boundary: str = "free", path: str = "boundary") -> float:
-        """Gershgorin upper bound on the largest eigenvalue of L (cheap)."""
-        return gershgorin_bound(self.laplacian(boundary, path))
-
-    def mu_max(self, boundary: str = "free", path: str = "boundary") -> float:
-        """Largest eigenvalue of L (eigsh; Gershgorin bound if it fails)."""
-        return largest_eigenvalue(self.laplacian(boundary, path))
-
     def h0_dim(self, boundary: str = "free", tol: float | None = None,
                path: str = "boundary") -> int:
         """dim H^0 = dim ker delta (with "fixed": drift modes left after clamping).

@@ -53,7 +53,7 @@ def position_weights(cx: CellComplex, at, path: str = "at",
             raise PresetError("needs \"vertex\"", path)
         w[index_arg(at["vertex"], cx.n_vertices, f"{path}.vertex", "vertex")] = 1.0
         return w
-    if cx.kind == "explicit":
+    if cx.kind == "explicit" or cx.shape is None or cx.seam is None:
         raise PresetError("positions on an explicit complex are {\"vertex\": id}", path)
     n_axes = len(cx.shape)
     frac = at if isinstance(at, list) else [at]

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import weakref
 from dataclasses import dataclass
+from typing import Any
 
 from sheafsynth.engine.preset.affine import AffineMatrix, parse_entry, parse_matrix
 from sheafsynth.engine.preset.spec import Preset
@@ -78,7 +79,7 @@ class NetworkSheaf:
 
     def restriction_maps(self) -> list[dict]:
         """Every restriction map, with its parameter dependence, for display."""
-        out = []
+        out: list[dict[str, Any]] = []
         for c in self.cells:
             if c.delay is not None:
                 length = "pitch" if c.delay.pitch else str(c.delay.length)
@@ -118,11 +119,14 @@ class NetworkSheaf:
         return dep
 
 
-def _hstack(left: AffineMatrix, right: AffineMatrix) -> list[list[str]]:
+def _hstack(left: AffineMatrix | None, right: AffineMatrix | None) -> list[list[str]]:
+    """Rows of ``[left | right]`` as text; a missing matrix has no rows."""
+    lrows = left.rows if left is not None else 0
+    rrows = right.rows if right is not None else 0
     rows = []
-    for i in range(max(left.rows, right.rows)):
-        lr = [e.describe() for e in left.entries[i]] if i < left.rows else []
-        rr = [e.describe() for e in right.entries[i]] if i < right.rows else []
+    for i in range(max(lrows, rrows)):
+        lr = [e.describe() for e in left.entries[i]] if left is not None and i < lrows else []
+        rr = [e.describe() for e in right.entries[i]] if right is not None and i < rrows else []
         rows.append(lr + ["|"] + rr)
     return rows
 

@@ -1,6 +1,6 @@
 """The preset layer: JSON documents in and out (DESIGN §3).
 
-Modules: :mod:`.spec` (the parsed dataclasses), :mod:`.schema` (size limits
+Modules: :mod:`.spec` (the parsed dataclasses), :mod:`.checks` (size limits
 and the JSON Schema), :mod:`.load` (read, migrate, parse), :mod:`.save`
 (atomic writes), :mod:`.affine` (numbers affine in parameters).  This layer
 imports nothing above it; the network checks live in
@@ -9,7 +9,7 @@ imports nothing above it; the network checks live in
 
 from sheafsynth.engine.preset.load import factory_presets, load_preset, parse_preset
 from sheafsynth.engine.preset.save import STALE_TEMP_S, atomic_write_text, dump_preset, save_preset, sweep_stale_temps
-from sheafsynth.engine.preset.schema import SCHEMA_PATH
+from sheafsynth.engine.preset.checks import SCHEMA_PATH
 from sheafsynth.engine.preset.spec import ControlSpec, ParamSpec, Preset
 
 __all__ = ["Preset", "ParamSpec", "ControlSpec", "load_preset", "parse_preset", "factory_presets",

@@ -19,6 +19,8 @@ from typing import Mapping, Sequence
 
 from sheafsynth.engine.errors import PresetError
 
+__all__ = ["Affine", "AffineMatrix", "parse_entry", "parse_matrix"]
+
 
 @dataclass(frozen=True)
 class Affine:

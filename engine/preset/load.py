@@ -5,7 +5,7 @@ run by itself, each raising a PresetError whose message starts with the JSON
 path at fault:
 
 1. parsing (bad JSON names line and column),
-2. size limits and the shipped JSON Schema (:mod:`.schema`),
+2. size limits and the shipped JSON Schema (:mod:`.checks`),
 3. migration of older versions (never silent reinterpretation),
 4. checks on parameters and controls the schema cannot express (ranges,
    reserved and doubly bound CCs).
@@ -25,7 +25,7 @@ from typing import Any, Mapping
 
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.locations import FACTORY_DIR
-from sheafsynth.engine.preset.schema import MAX_DEPTH, check_values, schema_error
+from sheafsynth.engine.preset.checks import MAX_DEPTH, check_values, schema_error
 from sheafsynth.engine.preset.spec import (DEFAULT_NOTES, DEFAULT_POLYPHONY, DEFAULT_RAMP_MS, FORMAT, VERSION,
                                            ControlSpec, ParamSpec, Preset)
 

@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Callable, Mapping
 
 from sheafsynth.engine.preset.load import parse_preset
-from sheafsynth.engine.preset.schema import check_values
+from sheafsynth.engine.preset.checks import check_values
 from sheafsynth.engine.preset.spec import Preset
 
 __all__ = ["STALE_TEMP_S", "dump_preset", "save_preset", "sweep_stale_temps", "atomic_write_text"]

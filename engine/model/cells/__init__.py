@@ -15,11 +15,13 @@ from __future__ import annotations
 from typing import Callable, Mapping
 
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.model.cells.model import CellModel, DelaySpec  # noqa: F401  (re-exported)
+from sheafsynth.engine.model.cells.model import CellModel, DelaySpec
 from sheafsynth.engine.model.cells import delay
 from sheafsynth.engine.model.cells import field
 from sheafsynth.engine.model.cells import filters
 from sheafsynth.engine.model.cells import statespace
+
+__all__ = ["CELL_KINDS", "CellBuilder", "CellModel", "DelaySpec", "build_cell"]
 
 CellBuilder = Callable[[dict, str, Mapping], CellModel]
 
@@ -34,14 +36,10 @@ CELL_KINDS: dict[str, CellBuilder] = {
 }
 
 
-def register_kind(kind: str, builder: CellBuilder) -> None:
-    """Add a cell kind (used by optional modules such as fields)."""
-    CELL_KINDS[kind] = builder
-
-
 def build_cell(spec: dict, path: str, parameters: Mapping) -> CellModel:
+    """The cell model of one ``cells[i]`` entry, built by its kind's builder (PresetError on an unknown kind)."""
     kind = spec.get("kind")
-    builder = CELL_KINDS.get(kind)
+    builder = CELL_KINDS.get(kind) if isinstance(kind, str) else None
     if builder is None:
         known = ", ".join(sorted(CELL_KINDS))
         raise PresetError(f'unknown cell kind "{kind}" (known: {known})', path + ".kind")

@@ -5,6 +5,8 @@ from __future__ import annotations
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.model.cells.model import CellModel, DelaySpec
 
+__all__ = ["build"]
+
 
 def build(spec: dict, path: str, parameters) -> CellModel:
     length = spec["length"]

@@ -102,8 +102,8 @@ from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.model.cells.field_model import FieldModel, Point, TuneSpec
 from sheafsynth.engine.model.cells.field_stability import check_stability
 from sheafsynth.engine.model.cells.model import CellModel
-from sheafsynth.engine.model.complexes import CellComplex, complex_from_spec
-from sheafsynth.engine.model.field_sheaf import FieldSheaf, check_consistency
+from sheafsynth.engine.model.complexes import CellComplex
+from sheafsynth.engine.model.field_sheaf import check_consistency, field_sheaf_from_cell
 from sheafsynth.engine.preset.affine import Affine, parse_entry
 
 __all__ = ["DYNAMICS", "KEYS", "PRECISIONS", "DEFAULT_STRIKE", "DEFAULT_PICKUP", "parse_point", "build",
@@ -170,10 +170,10 @@ def parse_point(raw, path: str, cx: CellComplex, stalk: int, boundary: str, para
         if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v < cx.n_vertices:
             raise PresetError(f"vertex must be an integer in 0..{cx.n_vertices - 1}, got {v!r}",
                               ppath + ".vertex")
-        if boundary == "fixed" and cx.boundary[v]:
+        if boundary == "fixed" and cx.boundary is not None and cx.boundary[v]:
             raise PresetError(f"vertex {v} is on the fixed rim: it never moves", ppath + ".vertex")
         return Point(path, vertex=int(v), direction=direction)
-    if cx.kind == "explicit":
+    if cx.kind == "explicit" or cx.shape is None:
         raise PresetError('positions on an explicit complex are {"vertex": id}', ppath)
     n_axes = len(cx.shape)
     scalar = not isinstance(pos, list)
@@ -221,14 +221,10 @@ def build(spec: dict, path: str, parameters: Mapping) -> CellModel:
     for key in spec:
         if key not in KEYS:
             raise PresetError(f"unknown key {key!r} in a field cell", f"{path}.{key}")
-    if "complex" not in spec:
-        raise PresetError('a field cell needs a "complex"', path)
-    cx = complex_from_spec(spec["complex"], path + ".complex")
-    sheaf = FieldSheaf.from_spec(cx, spec.get("stalk", 1), spec.get("twist"), path)
+    sheaf = field_sheaf_from_cell(spec, path)
+    cx = sheaf.complex
     boundary = spec.get("boundary", "free")
-    if boundary not in ("fixed", "free"):
-        raise PresetError(f'must be "fixed" or "free", got {boundary!r}', path + ".boundary")
-    cx.kept_vertices(boundary, path + ".boundary")
+    cx.kept_vertices(boundary, path + ".boundary")      # checks "fixed" / "free" and that state is left
     holonomy = check_consistency(sheaf, spec.get("consistency", "refuse"), path + ".consistency")
     dynamics = spec.get("dynamics", "wave")
     if dynamics not in DYNAMICS:

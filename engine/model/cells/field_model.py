@@ -209,8 +209,9 @@ class FieldModel:
                 raise PresetError("a tuned field needs a non-zero speed or stiffness at the parameters' "
                                   "default values", self.path + ".tune")
             op = lam * lam * self.laplacian()
-            if self.stiff and beta != 0.0:
-                op = op + beta * beta * self.stiffness_op()
+            s_op = self.stiffness_op()          # None unless stiff
+            if s_op is not None and beta != 0.0:
+                op = op + beta * beta * s_op
             op = sp.csr_matrix(op)
             n = op.shape[0]
             scale = max(1.0, float(abs(op).sum(axis=1).max()))

@@ -15,6 +15,8 @@ from sheafsynth.engine.preset.affine import Affine, AffineMatrix, parse_entry
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.model.cells.model import CellModel
 
+__all__ = ["direct_form_one", "build_onepole", "build_biquad", "allpass_coef_for_delay", "normalized_lattice_allpass", "build_allpass"]
+
 
 def direct_form_one(name: str, kind: str, b: list[Affine], a: list[Affine], tune: bool = False) -> CellModel:
     """State-space of a direct-form-I filter; unused history states are pruned.

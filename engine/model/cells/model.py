@@ -6,6 +6,8 @@ from dataclasses import dataclass, field
 
 from sheafsynth.engine.preset.affine import AffineMatrix
 
+__all__ = ["DelaySpec", "CellModel"]
+
 
 @dataclass(frozen=True)
 class DelaySpec:

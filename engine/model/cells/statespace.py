@@ -6,6 +6,8 @@ from sheafsynth.engine.preset.affine import AffineMatrix, parse_entry, parse_mat
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.model.cells.model import CellModel
 
+__all__ = ["build_statespace", "build_gain"]
+
 
 def build_statespace(spec: dict, path: str, parameters) -> CellModel:
     A = parse_matrix(spec["A"], path + ".A", parameters)
