@@ -70,16 +70,18 @@ class MidiTranslator:
     on_program: Callable[[int], None] | None = None
     counters: TranslatorCounters = field(default_factory=TranslatorCounters)
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         self.cc_map: dict[int, Binding] = {}
         self.velocity: list[Binding] = []
         self.pressure: list[Binding] = []
-        for c in self.preset.controls:
+        for i, c in enumerate(self.preset.controls):
             if c.source == "pitchbend":
                 self.bend_range = c.range_semitones
                 continue
+            if c.parameter is None:
+                raise PresetError("a controller binding needs a parameter", f"controls[{i}]")
             b = Binding(c, self.param_index[c.parameter])
-            if c.source == "cc":
+            if c.source == "cc" and c.cc is not None:
                 self.cc_map[c.cc] = b
             elif c.source == "velocity":
                 self.velocity.append(b)
@@ -101,6 +103,7 @@ class MidiTranslator:
 
     def bind(self, cc: int, parameter: str, curve: str = "linear",
              lo: float | None = None, hi: float | None = None) -> None:
+        """Bind controller ``cc`` to ``parameter`` over ``lo``..``hi`` (default: the parameter's range)."""
         spec = self.preset.parameters[parameter]
         lo = spec.lo if lo is None else lo
         hi = spec.hi if hi is None else hi

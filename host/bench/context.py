@@ -63,6 +63,7 @@ class Skip(Exception):
 
 
 def bench_module() -> CompiledModule:
+    """The C driver and hand-written loops of csrc/bench (stencil_hand.c once per state type), compiled."""
     text = []
     for name in _BENCH_FILES + ("stencil_hand.c",):
         p = BENCH_DIR / name
@@ -96,6 +97,7 @@ class Kernel:
         self.out = np.zeros(max_block, dtype=np.float32)
 
     def events(self, evs: list[tuple]):
+        """An ss_event array of (offset samples, type, a, b, value) tuples, in the kernel's ffi."""
         buf = self.kffi.new("ss_event[]", max(1, len(evs)))
         for i, (off, typ, a, b, val) in enumerate(evs):
             buf[i].offset, buf[i].type, buf[i].a, buf[i].b, buf[i].value = off, typ, a, b, val
@@ -128,6 +130,7 @@ class Kernel:
 
     @property
     def active(self) -> int:
+        """Voices sounding now."""
         return self.inst.counters["voices_active"]
 
 
@@ -163,12 +166,14 @@ class BenchContext:
         self.details.setdefault(key, {})["elapsed_s"] = time.perf_counter() - t0
 
     def kernel(self, name: str, raw, **kw) -> Kernel:
+        """The kernel of preset ``raw`` kept under ``name`` (built once per name and options)."""
         key = (name, tuple(sorted(kw.items())))
         if key not in self._kernels:
             self._kernels[key] = Kernel(self, raw, **kw)
         return self._kernels[key]
 
     def drop_kernels(self) -> None:
+        """Forget the kept kernels (frees their memory)."""
         self._kernels.clear()
 
     def plain(self) -> Kernel:

@@ -15,6 +15,7 @@ __all__ = ["denormals"]
 
 
 def denormals(ctx: BenchContext) -> None:
+    """``denormal_tail_ratio``: per-block time deep in a decaying chord's tail / its first blocks."""
     k = ctx.plain()
     # the preset's top note and above at the lowest decay: tails that reach the float denormal
     # range (below 1.2e-38) before the kernel frees a quiet voice (0.5 s below 1e-6)

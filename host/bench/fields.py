@@ -39,6 +39,7 @@ def field_size(raw: dict) -> int:
 
 
 def fields(ctx: BenchContext) -> None:
+    """``torus4096_realtime_factor`` and ``field_vs_handwritten``: a 64 x 64 torus plate, one voice."""
     torus = {
         "format": "sheafsynth-preset", "version": 1, "name": "bench-torus",
         "about": "64 x 64 torus plate, struck once (benchmark)",

@@ -14,6 +14,7 @@ __all__ = ["host_overhead"]
 
 
 def host_overhead(ctx: BenchContext) -> None:
+    """``host_overhead_us_per_block``: Python time of Instrument.process outside the kernel (us)."""
     k = ctx.plain()
     inst = k.inst
     evs = [(10, V.EV_PARAM, 0, 0, 0.99), (60, V.EV_NOTE_OFF, 61, 0, 0.0),

@@ -28,6 +28,7 @@ def _compiler_argv() -> list[str]:
 
 
 def machine_info() -> dict:
+    """CPU model, cores, compiler and flags, Python and library versions, load average at start."""
     cpu = platform.processor() or platform.machine()
     try:
         with open("/proc/cpuinfo", encoding="utf-8", errors="replace") as fh:

@@ -37,6 +37,7 @@ def interleave(sides: dict[str, Callable[[], float]], reps: int) -> dict[str, li
 
 
 def round_figures(x, nd=4):
+    """Floats (also inside dicts and lists) to ``nd`` significant figures; non-finite ones become None."""
     if x is None:
         return None
     if isinstance(x, float):

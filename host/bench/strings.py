@@ -28,6 +28,7 @@ def is_string(raw: dict) -> bool:
 
 
 def spread_notes(lo: int, hi: int, n: int) -> list[int]:
+    """``n`` MIDI notes spread over ``lo``..``hi`` (repeats when n exceeds the range)."""
     span = hi - lo + 1
     return [lo + (i * 37) % span if span > 1 else lo for i in range(n)]
 
@@ -158,6 +159,7 @@ def _hand_run(ctx: BenchContext, mem, nblocks: int, keep: np.ndarray | None = No
 
 
 def generated_vs_handwritten(ctx: BenchContext) -> None:
+    """``generated_vs_handwritten``: the compiled plain preset / csrc/bench/pluck_hand.c, per voice-sample."""
     raw = preset_raw(PLAIN_PRESET)
     # same arithmetic: a few distinct notes from a fresh pool, limiter off, outputs compared
     few = [40, 52, 57, 64, 71, 76, 83, 88]
@@ -225,6 +227,7 @@ def generated_vs_handwritten(ctx: BenchContext) -> None:
 
 
 def capacity(ctx: BenchContext) -> None:
+    """``voices_at_half_core``: voices at 48 kHz in half of one core's real time, per factory string preset."""
     counts = [512, 2048] if ctx.quick else [1024, 2048, 3072, 4096]
     nblk = 8 if ctx.quick else 16
     block_s = BLOCK / RATE

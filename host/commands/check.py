@@ -49,6 +49,7 @@ def _fmt_t60(t) -> str:
 
 
 def render_text(r: dict) -> str:
+    """The check report as a table for people (radii, certificate, modes with Hz, T60 s, cents)."""
     L: list[str] = []
     w = L.append
     w(f"preset {r['preset']}   notes {', '.join(map(str, r['notes']))}   rate {r['rate']:g} Hz")

@@ -63,6 +63,7 @@ def _us(v: float) -> str:
 
 
 def verdict(d: dict) -> str:
+    """One line judging a pass: how late wake-ups were against the block period (ms)."""
     period_ms = d["period_s"] * 1e3
     worst_ms = d["worst_late_s"] * 1e3
     if not d["realtime"]:

@@ -285,6 +285,7 @@ class AudioOutputBase:
 
     @property
     def is_open(self) -> bool:
+        """True while the stream is open."""
         return self._is_open
 
     def __enter__(self) -> "AudioOutputBase":

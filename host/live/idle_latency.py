@@ -34,6 +34,7 @@ class ShallowIdle:
         self._fd: int | None = None
 
     def open(self) -> "ShallowIdle":
+        """Try to hold the CPUs out of slow idle states; ``held`` and ``reason`` say how it went."""
         if self._fd is not None:
             return self
         try:
@@ -57,6 +58,7 @@ class ShallowIdle:
         return self
 
     def close(self) -> None:
+        """Let the CPUs sleep deeply again."""
         if self._fd is not None:
             os.close(self._fd)
             self._fd = None

@@ -154,9 +154,11 @@ class ArrivalClock:
         self._last: int | None = None
 
     def reset(self) -> None:
+        """Forget the previous arrival (the next one starts a new burst)."""
         self._last = None
 
     def stamp(self, gap_s: float, now_ns: int) -> int:
+        """CLOCK_MONOTONIC ns of a message that came ``gap_s`` s after the previous one, read at ``now_ns``."""
         if self._last is None or not (gap_s >= 0.0):
             est = now_ns
         else:
@@ -210,6 +212,7 @@ class MidiInputBase:
         return self
 
     def close(self) -> None:
+        """Close the port (idempotent)."""
         if self.state != "closed":
             self._close()
             self.state = "closed"
@@ -252,6 +255,7 @@ class MidiInputBase:
 
     @property
     def description(self) -> str:
+        """The input as the status line and start-up message name it."""
         if self.state == "virtual":
             return f"virtual port {self.virtual!r}"
         if self.state == "connected":

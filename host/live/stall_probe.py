@@ -76,6 +76,7 @@ class ProbeReading:
     pinned: bool
 
     def as_dict(self) -> dict:
+        """The reading as JSON-ready values (s, us, counts)."""
         d = dataclasses.asdict(self)
         d["hist"] = list(self.hist)
         d["bin_edges_us"] = list(self.bin_edges_us)
@@ -128,6 +129,7 @@ class StallProbe:
         self._ptr = None
 
     def start(self) -> "StallProbe":
+        """Start the probe threads (ProbeError when none starts)."""
         if self._ptr is not None:
             return self
         self._ptr = check_created(self.ffi, self.lib.ss_probe_start(int(round(self.tick_s * 1e9)),
@@ -136,6 +138,7 @@ class StallProbe:
         return self
 
     def stop(self) -> None:
+        """Stop and join the probe threads (idempotent)."""
         if self._ptr is not None:
             self.lib.ss_probe_stop(self._ptr)
             self._ptr = None
@@ -148,9 +151,11 @@ class StallProbe:
 
     @property
     def running(self) -> bool:
+        """True between start() and stop()."""
         return self._ptr is not None
 
     def read(self) -> ProbeReading:
+        """The totals so far (ProbeError when not running)."""
         if self._ptr is None:
             raise ProbeError("the stall probe is not running")
         st = self.ffi.new("ss_probe_stats *")

@@ -75,6 +75,7 @@ class StatusLine:
         self._shown = False
 
     def show(self, text: str) -> None:
+        """Redraw the one status line (main thread; nothing when not a terminal)."""
         if not self.enabled:
             return
         width = max(20, shutil.get_terminal_size((100, 24)).columns - 1)
@@ -90,6 +91,7 @@ class StatusLine:
         self.stream.flush()
 
     def clear(self) -> None:
+        """Erase the status line."""
         if self.enabled and self._shown:
             self.stream.write("\r\x1b[2K")
             self.stream.flush()
