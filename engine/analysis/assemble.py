@@ -56,7 +56,7 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
     lens: dict[int, int] = {}
     for lp, (n, a) in zip(prog.loops, tunes):
         lens[lp.delay] = n
-        if lp.tuner is not None:
+        if lp.tuner is not None and a is not None:
             env[f"@tune{lp.index}"] = float(a)
             env[f"@tunec{lp.index}"] = float(np.sqrt(1.0 - a * a))
     offsets: dict[int, int] = {}
@@ -65,9 +65,9 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
     for b in prog.blocks:
         offsets[b.index] = n_s
         if b.is_delay:
-            size[b.index] = lens.get(b.index, b.delay_length)
+            size[b.index] = lens[b.index] if b.index in lens else b.fixed_length()
         elif b.is_field:
-            size[b.index] = 2 * b.field.n_dof          # [u; u_prev]
+            size[b.index] = 2 * b.fieldprog().n_dof      # [u; u_prev]
         else:
             size[b.index] = b.n_state
         n_s += size[b.index]
@@ -92,14 +92,14 @@ def assemble(prog: StepProgram, values: Mapping[str, float] | None = None, pitch
                 Ab[o + i, o + i - 1] = 1.0
             Cb[b.out_signal, o + k - 1] = 1.0
         elif b.is_field:
-            fa, fb, fc = assemble_block(b.field, env, pitch, prog.rate)
+            fa, fb, fc = assemble_block(b.fieldprog(), env, pitch, prog.rate)
             field_A.append((o, fa))
             for r, c in zip(*fb.nonzero()):
                 Bb[o + r, ui + c] = fb[r, c]
             for r, c in zip(*fc.nonzero()):
                 Cb[b.out_signal + r, o + c] = fc[r, c]
         else:
-            A, B, C, D = (m.value(env) for m in (b.A, b.B, b.C, b.D))
+            A, B, C, D = (m.value(env) for m in b.linear())
             if k:
                 Ab[o:o + k, o:o + k] = A
                 Bb[o:o + k, ui:ui + b.n_in] = B

@@ -44,7 +44,7 @@ from sheafsynth.engine.analysis.fields import moving_symbols
 from sheafsynth.engine.analysis.gains import (CellGain, CellModel as GainCell, WireModel, build_gain_matrix, cell_gain,
                                               frozen_hinf, network_small_gain, peak_gain)
 from sheafsynth.engine.analysis.spectra import corners
-from sheafsynth.engine.analysis.storage import largest_ramp_slope
+from sheafsynth.engine.analysis.storage import BlockAt, largest_ramp_slope
 from sheafsynth.engine.ir.program import Block, StepProgram
 from sheafsynth.engine.ir.tuning import (KEEP_HI, KEEP_LO, TAU_MIN, block_response, loop_frequency, phase_delay,
                                          tune_all)
@@ -84,8 +84,15 @@ def _env(prog: StepProgram, theta: Mapping[str, float]) -> dict[str, float]:
     return env
 
 
+def _matrices_at(prog: StepProgram, b: Block) -> BlockAt:
+    """θ -> the block's (A, B, C, D) at parameters θ (other parameters at their defaults)."""
+    def at(theta: Mapping[str, float]) -> tuple[np.ndarray, ...]:
+        return _block_matrices(b, _env(prog, theta))
+    return at
+
+
 def _block_matrices(b: Block, env) -> tuple[np.ndarray, ...]:
-    return tuple(np.atleast_2d(m.value(env)).reshape(m.rows, m.cols) for m in (b.A, b.B, b.C, b.D))
+    return tuple(np.atleast_2d(m.value(env)).reshape(m.rows, m.cols) for m in b.linear())
 
 
 def delay_lengths_fixed(prog: StepProgram, box: Box, notes, grid: int = 9) -> tuple[bool, str]:
@@ -180,7 +187,7 @@ def _gain_cells(prog: StepProgram, box: Box, fixed_delays: bool):
         elif b.tune_symbol:
             special[b.name] = CellGain(b.name, 1.0, "l2", "orthogonal lattice section (Gray & Markel 1975)")
         elif b.n_state == 0:
-            cells.append(GainCell(b.name, "gain", corners=tuple(b.D.value(_env(prog, c)) for c in cs)))
+            cells.append(GainCell(b.name, "gain", corners=tuple(b.linear()[3].value(_env(prog, c)) for c in cs)))
         else:
             cells.append(GainCell(b.name, "filter", corners=tuple(_block_matrices(b, _env(prog, c)) for c in cs)))
     wires = []
@@ -263,10 +270,14 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
     cyclic = cyclic_blocks(prog)
     inflate = math.sqrt(_largest_inflation(gains0, wires, set(frozen_gains) & cyclic))
     slopes: dict[str, float] = {}
-    final = []
+    final: list[CellGain] = []
     for c in cells:
         if c.kind != "filter":
-            final.append(cell_gain(c, "l2"))
+            g = cell_gain(c, "l2")
+            if g is None:
+                return NetworkCertificate(False, "none", failing=f'cell "{c.name}": no ℓ2 gain bound '
+                                          "(a delay whose length moves)", notes=notes_out)
+            final.append(g)
             continue
         anyspeed = cell_gain(c, "l2")
         if c.name not in cyclic:
@@ -282,9 +293,9 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
             continue
         b = prog.block_named(c.name)
         names = sorted(s for s in _symbols(b) if s in box)
-        state_fixed = not ((b.A.symbols | b.B.symbols) & set(box))
-        frac = largest_ramp_slope(lambda th, b=b: _block_matrices(b, _env(prog, th)), names, box, target,
-                                  state_fixed=state_fixed)
+        A, B, _, _ = b.linear()
+        state_fixed = not ((A.symbols | B.symbols) & set(box))
+        frac = largest_ramp_slope(_matrices_at(prog, b), names, box, target, state_fixed=state_fixed)
         if frac is None:
             return NetworkCertificate(False, "none", failing=f'filter "{c.name}": no storage proves gain '
                                       f"{target:.6f} even for slow knob motion", notes=notes_out)
@@ -341,7 +352,7 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
     lens = {}
     for lp, (n, a) in zip(prog.loops, tune_all(prog, note, env)):
         lens[lp.delay] = n
-        if lp.tuner is not None:
+        if lp.tuner is not None and a is not None:
             env[f"@tune{lp.index}"] = a
             env[f"@tunec{lp.index}"] = math.sqrt(1.0 - a * a)
     field_radius = field_radius or {}
@@ -382,10 +393,10 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
                 out.append(CellGain(b.name, 1.0, "l2", "off-loop"))
                 continue
             if b.is_delay:
-                n = lens.get(b.index, b.delay_length)
+                n = lens[b.index] if b.index in lens else b.fixed_length()
                 out.append(CellGain(b.name, math.exp(min(700.0, -n * math.log(r))), "l2", "scaled delay"))
             elif b.n_state == 0:
-                out.append(CellGain(b.name, float(np.linalg.norm(b.D.value(env), 2)), "l2", "gain"))
+                out.append(CellGain(b.name, float(np.linalg.norm(b.linear()[3].value(env), 2)), "l2", "gain"))
             else:
                 A, B, C, D = mats[b.index]
                 if np.max(np.abs(np.linalg.eigvals(A))) >= r:

@@ -249,8 +249,8 @@ def modes(
             continue
         v = V[:, i]
         v = v / max(np.linalg.norm(v), 1e-300)
-        obs = 1.0 if Cm is None else float(np.linalg.norm(Cm @ v))
-        cand.append((complex(z), f, v, obs))
+        seen = 1.0 if Cm is None else float(np.linalg.norm(Cm @ v))
+        cand.append((complex(z), f, v, seen))
     if not cand:
         return []
     omax = max(c[3] for c in cand)
@@ -314,7 +314,7 @@ def drift_modes(A, tol: float = 1e-9, *, partition=None, dense_max: int = DENSE_
         dense = A.toarray() if sp.issparse(A) else A
         M = dense - np.eye(n)
         _, s, Vh = np.linalg.svd(M)
-        null = Vh[s <= tol * max(1.0, np.linalg.norm(dense, 2))].conj().T
+        null = Vh[s <= tol * max(1.0, float(np.linalg.norm(dense, 2)))].conj().T
         ev = np.linalg.eigvals(dense)
         alg = int(np.sum(np.abs(ev - 1.0) <= max(tol, 1e-6)))
         grows = alg > null.shape[1]
@@ -365,7 +365,7 @@ def plot_report(
     except ImportError:
         raise PlotUnavailable("install the plot extra: pip install sheafsynth[plot]") from None
 
-    poles = np.asarray(list(poles), dtype=complex)
+    pz = np.asarray(list(poles), dtype=complex)
     ms = list(mode_list)
     fig, (ax_z, ax_l, ax_t) = plt.subplots(1, 3, figsize=(15, 5.2), gridspec_kw={"width_ratios": [1, 1.1, 1.3]})
     if title:
@@ -374,13 +374,13 @@ def plot_report(
     # 1. poles against the unit circle
     th = np.linspace(0, 2 * np.pi, 512)
     ax_z.plot(np.cos(th), np.sin(th), color="0.3", lw=1.0, label="unit circle")
-    if poles.size:
-        out = np.abs(poles) >= 1.0
-        ax_z.scatter(poles.real[~out], poles.imag[~out], s=9, color="tab:blue", label="pole (decays)")
+    if pz.size:
+        out = np.abs(pz) >= 1.0
+        ax_z.scatter(pz.real[~out], pz.imag[~out], s=9, color="tab:blue", label="pole (decays)")
         if out.any():
-            ax_z.scatter(poles.real[out], poles.imag[out], s=22, color="tab:red", marker="x",
+            ax_z.scatter(pz.real[out], pz.imag[out], s=22, color="tab:red", marker="x",
                          label="pole on/outside (rings or grows)")
-    rho = spectral_radius if spectral_radius is not None else (float(np.max(np.abs(poles))) if poles.size else 0)
+    rho = spectral_radius if spectral_radius is not None else (float(np.max(np.abs(pz))) if pz.size else 0)
     ax_z.set_title(f"Poles against the unit circle\nspectral radius {rho:.8f} (1 − ρ = {1 - rho:.2e})",
                    fontsize=10)
     ax_z.set_aspect("equal")
@@ -392,14 +392,14 @@ def plot_report(
     ax_z.set_ylabel("Im z")
     ax_z.legend(loc="lower left", fontsize=7, framealpha=0.8)
     angles = [abs(np.angle(m.eigenvalue)) for m in ms if m.freq_hz > 0]
-    if poles.size and angles and max(angles) < 0.6:  # partials crowd z = 1: add a zoom
+    if pz.size and angles and max(angles) < 0.6:  # partials crowd z = 1: add a zoom
         span = max(angles) * 1.15 + 0.01
         ins = ax_z.inset_axes([0.50, 0.50, 0.46, 0.46])
         arc = np.linspace(-0.02, span, 200)
         ins.plot(np.cos(arc), np.sin(arc), color="0.3", lw=1.0)
-        near = (np.abs(np.angle(poles)) <= span) & (poles.imag >= 0)
-        ins.scatter(poles.real[near], poles.imag[near], s=8,
-                    color=np.where(np.abs(poles[near]) >= 1.0, "tab:red", "tab:blue"))
+        near = (np.abs(np.angle(pz)) <= span) & (pz.imag >= 0)
+        ins.scatter(pz.real[near], pz.imag[near], s=8,
+                    color=np.where(np.abs(pz[near]) >= 1.0, "tab:red", "tab:blue"))
         ins.set_xlim(math.cos(span) - 0.01, 1.01)
         ins.set_ylim(-0.01, math.sin(span) + 0.01)
         ins.text(0.04, 0.04, "zoom near z = 1", transform=ins.transAxes, fontsize=7, color="0.3")

@@ -74,7 +74,8 @@ def mapped_box(preset: Preset) -> dict[str, tuple[float, float]]:
     for c in preset.controls:
         if c.parameter is None:
             continue
-        lo, hi = sorted((c.lo, c.hi))
+        spec = preset.parameters[c.parameter]
+        lo, hi = sorted((spec.lo if c.lo is None else c.lo, spec.hi if c.hi is None else c.hi))
         if c.parameter in box:
             lo, hi = min(lo, box[c.parameter][0]), max(hi, box[c.parameter][1])
         box[c.parameter] = (lo, hi)
@@ -122,9 +123,9 @@ def _state_estimate(prog: StepProgram, note: float) -> int:
     period = prog.rate / note_hz(note)
     for b in prog.blocks:
         if b.is_delay:
-            n += b.delay_length if not b.pitch else int(period) + 2
+            n += b.fixed_length() if not b.pitch else int(period) + 2
         elif b.is_field:
-            n += 2 * b.field.n_dof
+            n += 2 * b.fieldprog().n_dof
         else:
             n += b.n_state
     return n

@@ -49,6 +49,7 @@ __all__ = [
     "hexagon",
     "ramp_storage_gain",
     "largest_ramp_slope",
+    "BlockAt",
 ]
 
 Box = Mapping[str, tuple[float, float]]
