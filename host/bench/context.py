@@ -91,9 +91,9 @@ class Kernel:
                  max_block: int = BLOCK):
         self.b = bench
         self.inst = Instrument(raw, rate=RATE, max_block=max_block, polyphony=polyphony, limiter=limiter)
-        h = self.inst.handle()
+        h = self.inst.handle()              # the kernel reached only through the instrument's handle
         self.fn, self.state = h.render_fn, h.state
-        self.kffi = self.inst.module.ffi
+        self.kffi, self.klib = h.module.ffi, h.module.lib
         self.out = np.zeros(max_block, dtype=np.float32)
 
     def events(self, evs: list[tuple]):
@@ -117,7 +117,7 @@ class Kernel:
 
     def reinit(self, limiter: bool = True) -> None:
         """Back to a freshly prepared kernel (sheafsynth_init: no voices, defaults, note count 0)."""
-        lib = self.inst.module.lib
+        lib = self.klib
         st = self.kffi.cast("void *", self.state)
         if lib.sheafsynth_init(st, 0) != 0 or lib.sheafsynth_set_limiter(st, 1 if limiter else 0) != 0:
             raise SheafsynthError("kernel re-init failed")

@@ -21,7 +21,7 @@ TORUS_SHAPE = (64, 64)     # rows x columns of the benchmark torus, vertices
 
 
 def field_size(raw: dict) -> int:
-    """Vertices x stalk of a preset's field cells, read from the JSON (engine/cells/field.py's shapes)."""
+    """Vertices x stalk of a preset's field cells, read from the JSON (engine/model/cells/field.py's shapes)."""
     total = 0
     for c in raw.get("cells", []):
         if c.get("kind") != "field" or not isinstance(c.get("complex"), dict):

@@ -10,11 +10,10 @@ import math
 
 import numpy as np
 
-from sheafsynth.engine.ir.tuning import loop_slack
 from sheafsynth.engine.errors import SheafsynthError
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.ir.program import MAX_BEND_SEMITONES, note_hz
-from sheafsynth.engine.ir.tuning import tune_loop
+from sheafsynth.engine.ir.tuning import loop_slack, tune_loop
 from sheafsynth.engine.preset import factory_presets
 from sheafsynth.host.bench.context import BLOCK, PLAIN_PRESET, RATE, BenchContext, Kernel, Skip, preset_raw
 from sheafsynth.host.bench.stats import interleave, solve_half, spread
@@ -74,7 +73,7 @@ def kernel_ring_floats(prog, blk, note: int) -> int:
     """Ring floats the kernel gives a voice of ``note`` on pitch delay ``blk``.
 
     The kernel's rule (ssk_voice_reset in the generated C): room for the
-    period at note - MAX_BEND semitones times the loop's slack (engine.backends.c.emit.loop_slack) -- 1 plus a
+    period at note - MAX_BEND semitones times the loop's slack (engine.ir.tuning.loop_slack) -- 1 plus a
     half for every filter on the loop and every wire gain that can turn
     negative (each can add at most half a period of phase delay) -- plus 2.5
     samples, as a power of two, at most the preset's ring.

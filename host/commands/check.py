@@ -2,7 +2,7 @@
 
 Exit status 0 when the preset is stable at every corner and note, 1 when it
 is not, 2 for bad input.  ``--json`` prints the report (shape in
-engine/schema/check-report.json); ``--plot FILE.png`` draws poles, the
+engine/analysis/schema/check-report.json); ``--plot FILE.png`` draws poles, the
 partial ladder and T60 bars.
 """
 
