@@ -41,10 +41,6 @@ class ParamSpec:
     about: str = ""
     ramp_ms: float = DEFAULT_RAMP_MS
 
-    def clamp(self, x: float) -> float:
-        """``x`` limited to ``[lo, hi]``."""
-        return min(self.hi, max(self.lo, x))
-
 
 @dataclass(frozen=True)
 class ControlSpec:
