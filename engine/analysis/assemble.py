@@ -27,6 +27,8 @@ from sheafsynth.engine.analysis.assemble_field import assemble_block
 from sheafsynth.engine.ir.program import StepProgram
 from sheafsynth.engine.ir.tuning import tune_all
 
+__all__ = ["LinearSystem", "assemble", "impulse_response"]
+
 
 @dataclass
 class LinearSystem:
