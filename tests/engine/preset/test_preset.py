@@ -10,9 +10,9 @@ import pytest
 
 from sheafsynth.engine.model.cells import CELL_KINDS
 from sheafsynth.engine.errors import PresetError
-from sheafsynth.engine.ir.validate import check_preset, load_checked
+from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.model.sheaf import sheaf_of
-from sheafsynth.engine.preset import SCHEMA_PATH, factory_presets, load_preset, parse_preset, save_preset
+from sheafsynth.engine.preset import SCHEMA_PATH, factory_presets, parse_preset, save_preset
 
 BASE = {
     "format": "sheafsynth-preset", "version": 1, "name": "test-string",
@@ -196,31 +196,8 @@ def test_with_values_refuses_out_of_range():
     assert "parameters.bright.value" in str(info.value)
 
 
-def test_preset_layer_alone_leaves_network_checks_to_validate():
-    """load_preset checks the document; the wiring is checked one layer up (load_checked)."""
-    doc = mutate(lambda d: d["wires"].append({"from": "loop", "to": "nowhere"}))
-    assert load_preset(doc).name == "test-string"
-    with pytest.raises(PresetError) as info:
-        load_checked(doc)
-    assert str(info.value).startswith("wires[")
-
-
-def test_save_with_network_check_refuses_a_bad_network(tmp_path):
-    target = tmp_path / "mine.json"
-    doc = mutate(lambda d: d["wires"].append({"from": "loop", "to": "nowhere"}))
-    with pytest.raises(PresetError):
-        save_preset(doc, target, check=check_preset)
-    assert not target.exists()
-
-
 def test_with_values_equals_parsing_the_changed_document():
     p = load_checked(BASE)
     doc = copy.deepcopy(BASE)
     doc["parameters"]["bright"]["value"] = 0.25
     assert p.with_values({"bright": 0.25}) == parse_preset(doc)
-
-
-def test_sheaf_of_builds_once_per_preset_object():
-    p = load_preset(BASE)
-    assert sheaf_of(p) is sheaf_of(p)
-    assert sheaf_of(load_preset(BASE)) is not sheaf_of(p)
