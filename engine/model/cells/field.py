@@ -5,9 +5,11 @@ bridge) carried as a sheaf with stalk R^d on every vertex and edge of a cell
 complex (engine.model.complexes).  Its state is the displacement ``u`` and the
 previous displacement ``u_prev`` on every kept vertex (V*d floats each, per
 voice); one sample advances it by one leapfrog (or diffusion) step.  The
-geometry, the twists, the boundary treatment and the update formula are
-those of engine.model.complexes; this module parses the JSON, checks stability
-and consistency, and describes the ports.  Lowering, C generation and the
+geometry is engine.model.complexes, the twists, the boundary treatment and
+the consistency check engine.model.field_sheaf, the parsed model
+engine.model.cells.field_model and the stability check (with the update
+formula's derivation) engine.model.cells.field_stability; this module parses
+the JSON, builds the model and describes the ports.  Lowering, C generation and the
 NumPy reference live in engine.ir.fields, engine.backends.reference.field and engine.backends.c.emitters.field.
 
 JSON shape
@@ -19,7 +21,7 @@ JSON shape
                                                         # or {"vertices": V, "edges": [...], "faces": [...]}
      "boundary": "free",            # "fixed" | "free" (open edges; default "free")
      "stalk": 1,                    # d >= 1 (default 1)
-     "twist": {"seam": -1},         # optional restriction-map twists (engine.model.complexes)
+     "twist": {"seam": -1},         # optional restriction-map twists (engine.model.field_sheaf)
      "consistency": "refuse",       # "refuse" | "report" inconsistent faces (default "refuse")
      "dynamics": "wave",            # "wave" | "stiff" | "diffusion" (default "wave")
      "speed": "tension",            # entry: Courant number lambda (diffusion: nu)
@@ -38,7 +40,7 @@ A *position* is a fraction in [0, 1] for a path (or ``[p]``), ``[p0, p1]``
 for a grid (fractions along axis 0 and axis 1), or ``{"vertex": id}`` on any
 complex; every fraction may be an entry, so a knob moves the point.
 Weights interpolate linearly (path) or bilinearly (grid) between
-neighbouring vertices (engine.model.complexes.position_weights), so the point
+neighbouring vertices (engine.model.positions.position_weights), so the point
 moves smoothly; moving a pickup changes only output weights and moving a
 strike only input weights, neither touches stability.  A *point* is a
 position or ``{"at": position, "direction": [a_1, ..., a_d]}``; the

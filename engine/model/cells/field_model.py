@@ -16,8 +16,8 @@ per-voice pitch factor k2 (1 unless tuned) and the release factor rho
     diffusion:     u+ = rho * ((1 - sigma) u - k2 nu L u) + b x
 
 with L the boundary-treated sheaf Laplacian, S the bending operator and
-``b x`` the strike weights times the input samples (engine.model.complexes:
-Bilbao 2009's damped leapfrog scheme).
+``b x`` the strike weights times the input samples (Bilbao 2009's damped leapfrog
+scheme; derivation in engine.model.cells.field_stability).
 
 Stability
 ---------
