@@ -176,7 +176,8 @@ class Recorder:
 
     def start(self) -> None:
         """Open the file and start copying."""
-        import soundfile
+        import soundfile  # lazy: loads libsndfile, needed only when recording (start-up time)
+
         try:
             self._file = soundfile.SoundFile(str(self.path), mode="w",
                                              samplerate=int(round(self._rt.rate)),
@@ -372,7 +373,7 @@ class AudioOutput(AudioOutputBase):
             # The stream ended by itself: the device (or the JACK server) went away.
             # Stopping or closing it -- and PortAudio's own clean-up at exit -- would
             # then wait forever for a server that is gone, so the stream is left alone.
-            import atexit
+            import atexit  # stdlib; needed only on this rare path
 
             handler = getattr(sd, "_exit_handler", None)
             if handler is not None:

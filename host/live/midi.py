@@ -61,7 +61,7 @@ class MidiError(AudioError):
 def _rtmidi():
     os.environ.setdefault("JACK_NO_START_SERVER", "1")   # never start a JACK server behind the user's back
     try:
-        import rtmidi
+        import rtmidi  # lazy: loads the MIDI system's library (start-up time; `render` never needs it)
     except ImportError as exc:  # pragma: no cover - a dependency of the package
         raise MidiError(f"python-rtmidi is not installed ({exc})") from None
     return rtmidi
@@ -129,7 +129,7 @@ def find_port(names: list[str], pattern: str) -> int | None:
 
 def parse(data) -> "object | None":
     """A mido message from one complete MIDI message's bytes, or None if malformed."""
-    import mido
+    import mido  # lazy (start-up time); cached by Python after the first message
 
     data = list(data)
     try:

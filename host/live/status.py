@@ -116,7 +116,7 @@ class Keyboard:
 
     def __enter__(self) -> "Keyboard":
         if self.enabled:
-            import termios
+            import termios  # POSIX-only modules: imported only where a terminal is enabled
             import tty
 
             fd = self.stream.fileno()
@@ -129,7 +129,7 @@ class Keyboard:
 
     def __exit__(self, *exc) -> None:
         if self._saved is not None:
-            import termios
+            import termios  # POSIX-only
 
             termios.tcsetattr(self.stream.fileno(), termios.TCSADRAIN, self._saved)
             self._saved = None
@@ -138,7 +138,7 @@ class Keyboard:
         """Keys pressed since the last call ("" when none)."""
         if not self.enabled:
             return ""
-        import select
+        import select  # POSIX select on a terminal; only when keys are read
 
         fd = self.stream.fileno()
         keys = []
