@@ -35,6 +35,7 @@ from typing import Callable
 from sheafsynth.engine.errors import AudioError, InputError
 
 __all__ = [
+    "open_midi_input",
     "MidiError",
     "ArrivalClock",
     "MidiInputBase",
@@ -337,3 +338,17 @@ class RtMidiInput(MidiInputBase):
             self._mi.close_port()
         finally:
             self._mi.delete()
+
+
+def open_midi_input(api: str | None, *, name: str | None = None, virtual: str | None = None) -> MidiInputBase:
+    """The opened input ``play`` reads: the port whose name contains ``name``, or a virtual port
+    called ``virtual``; neither given, the first source that is not a loop-back port, else a
+    virtual port "sheafsynth in"."""
+    if name is not None:
+        return RtMidiInput(api=api, name=name).open()
+    if virtual is not None:
+        return RtMidiInput(api=api, virtual=virtual).open()
+    names = [n for n in list_midi_inputs(api) if "through" not in n.lower()]
+    if names:
+        return RtMidiInput(api=api, name=names[0]).open()
+    return RtMidiInput(api=api, virtual="sheafsynth in").open()

@@ -12,6 +12,8 @@ Times in s, rates in Hz, frames in samples.
 
 from __future__ import annotations
 
+import copy
+import math
 import os
 import time
 from dataclasses import dataclass, field
@@ -191,6 +193,20 @@ class ProgramBank:
         mapped = ", ".join(sorted(box)) or "none"
         return (f'no control of "{slot.name}" maps it, so its stability was checked only at its '
                 f"value (mapped: {mapped}; --allow-unstable learns it anyway)")
+
+    def current_as_preset(self) -> dict:
+        """The current program's preset JSON with the instance's values now (clamped to their ranges;
+        a non-finite one back to its default) and the live control map (session lock held)."""
+        slot, inst = self.current, self.inst
+        if slot is None or inst is None:
+            raise PresetError("no program is playing", "save")
+        values = {}
+        for p in inst.program.params:
+            v = inst.values[p.name]
+            values[p.name] = min(p.hi, max(p.lo, v)) if math.isfinite(v) else p.value
+        doc = copy.deepcopy(slot.preset.with_values(values).raw)
+        doc["controls"] = controls_doc(slot.translator)
+        return doc
 
     def all_slots(self) -> list[ProgramSlot]:
         """Every slot once (the start preset may be outside the bank)."""

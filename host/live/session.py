@@ -20,9 +20,7 @@ Times in s unless a name says ns; rates in Hz; buffers in frames.
 from __future__ import annotations
 
 import collections
-import copy
 import json
-import math
 import signal
 import sys
 import threading
@@ -38,9 +36,9 @@ from sheafsynth.engine.preset import atomic_write_text
 from sheafsynth.host import bank
 from sheafsynth.host.live.audio import AudioOutput, check_output_settings, resolve_output_device
 from sheafsynth.host.live.idle_latency import ShallowIdle
-from sheafsynth.host.live.midi import MidiError, MidiInputBase, RtMidiInput, default_api, list_midi_inputs, parse
+from sheafsynth.host.live.midi import MidiError, MidiInputBase, default_api, open_midi_input, parse
 from sheafsynth.host.live.options import PlayOptions
-from sheafsynth.host.live.programs import ProgramBank, ProgramSlot, controls_doc, point_user_folder
+from sheafsynth.host.live.programs import ProgramBank, ProgramSlot, point_user_folder
 from sheafsynth.host.live.report import LOG_LIMIT, MidiLog, PairLog, machine_report, play_report, xrun_summary
 from sheafsynth.host.live.runtime import HostCounters, HostRuntime
 from sheafsynth.host.live.stall_probe import PLAY_TICKS, ProbeReading, Stall, StallProbe
@@ -212,23 +210,11 @@ class LiveHost:
         with self._lock:
             return self._rt.counters()
 
-    def _open_midi(self) -> MidiInputBase:
-        o = self.opts
-        api = o.midi_api if o.midi_api is not None else default_api(self.hostapi)
-        if o.midi_in is not None:
-            return RtMidiInput(api=api, name=o.midi_in).open()
-        if o.virtual_midi is not None:
-            return RtMidiInput(api=api, virtual=o.virtual_midi).open()
-        # Neither given: the first source that is not a loop-back port, else a virtual port.
-        names = [n for n in list_midi_inputs(api) if "through" not in n.lower()]
-        if names:
-            return RtMidiInput(api=api, name=names[0]).open()
-        return RtMidiInput(api=api, virtual="sheafsynth in").open()
-
     def _open_output(self) -> AudioOutput:
         """The audio output with the current program's kernel in place (not yet started)."""
         o = self.opts
-        midi = self._open_midi()
+        api = o.midi_api if o.midi_api is not None else default_api(self.hostapi)
+        midi = open_midi_input(api, name=o.midi_in, virtual=o.virtual_midi)
         self.midi = midi
         try:
             audio = AudioOutput(device=self.device_index, rate=self.rate, blocksize=o.buffer,
@@ -446,18 +432,11 @@ class LiveHost:
     # ---------------------------------------------------------------- save / report
     def _save(self, name: str | None) -> Path | None:
         """Current values and control map of the current program as a user preset."""
-        slot, inst = self.slot, self.inst
         if not name:
-            name = f"{slot.name[:40]}-{time.strftime('%Y%m%d-%H%M%S')}"
-        with self._lock:
-            values = {}
-            for p in inst.program.params:
-                v = inst.values[p.name]
-                values[p.name] = min(p.hi, max(p.lo, v)) if math.isfinite(v) else p.value
-            controls = controls_doc(slot.translator)
+            name = f"{self.slot.name[:40]}-{time.strftime('%Y%m%d-%H%M%S')}"
         try:
-            doc = copy.deepcopy(slot.preset.with_values(values).raw)
-            doc["controls"] = controls
+            with self._lock:
+                doc = self._bank.current_as_preset()
             path = bank.save_user_preset(doc, name)
         except (PresetError, OSError) as exc:
             self._say(f"could not save preset {name!r}: {exc}")

@@ -24,7 +24,7 @@ import threading
 
 import pytest
 
-from tests.live import LIVE_BLOCK, LIVE_RATE, MidiSender, PlayProcess
+from tests.live import LIVE_BLOCK, LIVE_RATE, PlayProcess
 
 
 def _env_number(name: str, default: float, floor: float, kind: type = float):
@@ -142,13 +142,15 @@ def check_preset_error():
 # ---------------------------------------------------------------- live host
 
 class Live:
+    """The live helpers: ``Play`` (a ``sheafsynth play`` process); MIDI goes in through
+    tests.live.send_timeline."""
+
     Play = PlayProcess
-    Sender = MidiSender
     rate = LIVE_RATE
     block = LIVE_BLOCK
 
 
 @pytest.fixture
 def live(jack_server):
-    """The live helpers (needs the JACK server): ``live.Play(...)``, ``live.Sender(...)``."""
+    """The live helpers (needs the JACK server): ``live.Play(...)``."""
     return Live
