@@ -173,7 +173,7 @@ def test_kill_at_random_moments_while_saving_repeatedly(seeded_user_dir):
 
 def test_a_later_save_sweeps_the_temp_files_killed_saves_left(seeded_user_dir):
     """Killed saves leave hidden temp files; the next save of that preset removes
-    the stale ones (untouched for engine.preset.document.STALE_TEMP_S) and nothing else."""
+    the stale ones (untouched for engine.preset.save.STALE_TEMP_S) and nothing else."""
     from sheafsynth.engine.preset import STALE_TEMP_S, sweep_stale_temps
     from sheafsynth.host.bank import save_user_preset
 
