@@ -8,7 +8,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import signal
 
 from sheafsynth.engine.backends.reference.stepper import ReferenceStepper
 from sheafsynth.engine.ir import voicing as V
@@ -22,6 +21,7 @@ __all__ = ["one_voice"]
 
 def _loop_iir(ctx: BenchContext, k: Kernel, note: int):
     """(b, a) of one voice: excitation in, voice output out (one tuned loop, output off the delay)."""
+    from scipy import signal  # lazy: scipy.signal costs half a second of every command's start-up
     prog = k.inst.program
     env = k.inst.values
     if len(prog.loops) != 1:
@@ -83,6 +83,7 @@ def _excitation(ctx: BenchContext, k: Kernel, note: int, velocity: int, started:
 
 def one_voice(ctx: BenchContext) -> None:
     """``speedup_vs_lfilter`` and ``speedup_vs_reference``: one voice, note 60, against the yardsticks."""
+    from scipy import signal  # lazy: scipy.signal costs half a second of every command's start-up
     k = ctx.plain()
     note, vel = 60, 100
     frames = RATE if not ctx.quick else RATE // 2
