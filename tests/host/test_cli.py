@@ -5,13 +5,15 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from pathlib import Path
 
 import mido
 import numpy as np
 import pytest
 import soundfile as sf
 
-from sheafsynth.host.cli import main
+import sheafsynth.host.commands as pkg
+from sheafsynth.host.cli import COMMANDS, main
 from tests.measure import cents, fundamental
 
 
@@ -138,3 +140,11 @@ def test_demo_renders_every_factory_preset(tmp_path):
     for p in factory_presets():
         x, rate = sf.read(tmp_path / "demo" / f"{p.stem}.wav")
         assert np.isfinite(x).all() and 0.01 < np.abs(x).max() <= 0.8913
+
+
+def test_every_command_module_is_in_the_table_by_name():
+    """host/commands/<name>.py is the command <name>, and cli.COMMANDS lists each one once
+    (a command module that fails to import must break the CLI, not vanish from it)."""
+    modules = {p.stem for p in Path(pkg.__file__).parent.glob("*.py")} - {"__init__", "shared"}
+    names = [c.name for c in COMMANDS]
+    assert sorted(names) == sorted(modules) and len(set(names)) == len(names)
