@@ -19,16 +19,9 @@
 #include <stdint.h>
 #include "ss_abi.h"
 
-/* PortAudio's callback types, declared here so that no portaudio.h is
- * needed; layout as in PortAudio v19's public header. */
-#ifndef PORTAUDIO_H
-typedef double PaTime;
-typedef unsigned long PaStreamCallbackFlags;
-typedef struct PaStreamCallbackTimeInfo {
-    PaTime inputBufferAdcTime;
-    PaTime currentTime;
-    PaTime outputBufferDacTime;
-} PaStreamCallbackTimeInfo;
+/* PortAudio's callback flags and return codes (values as in PortAudio v19's
+ * public header; its callback types are declared in the CDEF part below, so
+ * that no portaudio.h is needed). */
 #define paInputUnderflow  0x00000001UL
 #define paInputOverflow   0x00000002UL
 #define paOutputUnderflow 0x00000004UL
@@ -37,9 +30,17 @@ typedef struct PaStreamCallbackTimeInfo {
 #define paContinue 0
 #define paComplete 1
 #define paAbort    2
-#endif
 
 /* CDEF-BEGIN */
+/* PortAudio's callback types; layout as in PortAudio v19's public header. */
+typedef double PaTime;
+typedef unsigned long PaStreamCallbackFlags;
+typedef struct PaStreamCallbackTimeInfo {
+    PaTime inputBufferAdcTime;
+    PaTime currentTime;
+    PaTime outputBufferDacTime;
+} PaStreamCallbackTimeInfo;
+
 #define SS_HOST_HIST_BINS 512       /* callback-time histogram bins */
 #define SS_HOST_HIST_SPAN 2         /* histogram spans 0..2 block periods */
 #define SS_HOST_MAX_CHANNELS 8

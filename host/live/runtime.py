@@ -27,9 +27,9 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from sheafsynth.engine.backends.c.abi import read_cdef_part
 from sheafsynth.engine.backends.c.build import CompiledModule, compile_module
-from sheafsynth.engine.errors import AudioError, BuildError
-from sheafsynth.engine.locations import CSRC_DIR
+from sheafsynth.engine.errors import AudioError
 
 __all__ = [
     "HostRuntime",
@@ -40,16 +40,6 @@ __all__ = [
     "check_status",
     "check_created",
 ]
-
-_PA_TYPES = """
-typedef double PaTime;
-typedef unsigned long PaStreamCallbackFlags;
-typedef struct PaStreamCallbackTimeInfo {
-    PaTime inputBufferAdcTime;
-    PaTime currentTime;
-    PaTime outputBufferDacTime;
-} PaStreamCallbackTimeInfo;
-"""
 
 _HEADERS = ("host_rt.h", "stall_probe.h")
 _SOURCE = '#include "host_rt.c"\n#include "stall_probe.c"\n'
@@ -91,16 +81,8 @@ def check_created(ffi: Any, ptr: Any, what: str, error: type[AudioError] = Audio
     return ptr
 
 
-def _cdef_part(name: str) -> str:
-    text = (CSRC_DIR / name).read_text(encoding="utf-8")
-    try:
-        return text.split("/* CDEF-BEGIN */", 1)[1].split("/* CDEF-END */", 1)[0]
-    except IndexError:
-        raise BuildError(f"csrc/{name} lacks its CDEF-BEGIN / CDEF-END markers") from None
-
-
 def _cdef() -> str:
-    return _PA_TYPES + "".join(_cdef_part(name) for name in _HEADERS)
+    return "".join(read_cdef_part(name) for name in _HEADERS)
 
 
 def load_runtime(*, strict: bool = False) -> CompiledModule:

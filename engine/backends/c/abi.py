@@ -21,7 +21,7 @@ from sheafsynth.engine.ir import voicing
 from sheafsynth.engine.locations import CSRC_DIR
 
 __all__ = ["ABI_HEADER", "CDEF", "CONSTANTS", "EVENT_CODES", "ENTRY_POINTS", "SS_OK", "SS_ERR_FRAMES",
-           "SS_ERR_STATE", "parse_abi"]
+           "SS_ERR_STATE", "cdef_part", "parse_abi", "read_cdef_part"]
 
 ABI_HEADER = CSRC_DIR / "ss_abi.h"
 
@@ -32,12 +32,31 @@ ENTRY_POINTS = ("sheafsynth_state_size", "sheafsynth_init", "sheafsynth_render",
 _DEFINE = re.compile(r"^\s*#\s*define\s+(SS_[A-Z0-9_]+)\s+(-?\d+)\b", re.M)
 
 
-def parse_abi(text: str, where: str = "csrc/ss_abi.h") -> tuple[str, dict[str, int]]:
-    """(cdef text, SS_* constants) of an ABI header's text; BuildError if it is malformed."""
+def cdef_part(text: str, where: str) -> str:
+    """The declarations between a header's ``/* CDEF-BEGIN */`` and ``/* CDEF-END */`` markers.
+
+    That part is plain C declarations and integer ``#define`` lines that cffi's
+    cdef reads as they are; BuildError naming ``where`` when a marker is missing.
+    """
     try:
-        part = text.split("/* CDEF-BEGIN */", 1)[1].split("/* CDEF-END */", 1)[0]
+        return text.split("/* CDEF-BEGIN */", 1)[1].split("/* CDEF-END */", 1)[0]
     except IndexError:
         raise BuildError(f"{where} lacks its CDEF-BEGIN / CDEF-END markers") from None
+
+
+def read_cdef_part(name: str) -> str:
+    """:func:`cdef_part` of the shipped header ``csrc/<name>``."""
+    path = CSRC_DIR / name
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise BuildError(f"cannot read {path}: {exc.strerror}") from None
+    return cdef_part(text, f"csrc/{name}")
+
+
+def parse_abi(text: str, where: str = "csrc/ss_abi.h") -> tuple[str, dict[str, int]]:
+    """(cdef text, SS_* constants) of an ABI header's text; BuildError if it is malformed."""
+    part = cdef_part(text, where)
     consts: dict[str, int] = {}
     for name, value in _DEFINE.findall(part):
         if name in consts:

@@ -18,19 +18,9 @@ from sheafsynth.engine.analysis.modes import (
     t60_from_radius,
 )
 from sheafsynth.engine.analysis.spectra import AnalysisError
+from tests.reference_systems import ks_matrix
 
 FS = 48000.0
-
-
-def ks_matrix(N, g):
-    """Plucked-string loop y[n] = g/2 (y[n-N] + y[n-N-1]); state = last N+1 outputs."""
-    n = N + 1
-    rows, cols, vals = [0, 0], [N - 1, N], [g / 2, g / 2]
-    for i in range(1, n):
-        rows.append(i)
-        cols.append(i - 1)
-        vals.append(1.0)
-    return sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
 
 
 def ks_output(N):

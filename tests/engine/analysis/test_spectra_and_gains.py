@@ -23,18 +23,7 @@ from sheafsynth.engine.analysis.gains import (
 from sheafsynth.engine.analysis.spectra import MAX_CORNER_PARAMETERS, AnalysisError, corners, spectral_radius
 from sheafsynth.engine.analysis.storage import hexagon, l2_gain_common_storage, largest_ramp_slope, ramp_storage_gain
 from sheafsynth.engine.errors import SheafsynthError
-
-
-def ks_matrix(N, g, sparse=True):
-    """Plucked-string loop y[n] = g/2 (y[n-N] + y[n-N-1]); state = last N+1 outputs."""
-    n = N + 1
-    rows, cols, vals = [0, 0], [N - 1, N], [g / 2, g / 2]
-    for i in range(1, n):
-        rows.append(i)
-        cols.append(i - 1)
-        vals.append(1.0)
-    A = sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
-    return A if sparse else A.toarray()
+from tests.reference_systems import ks_matrix
 
 
 def one_pole(p):
