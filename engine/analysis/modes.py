@@ -23,6 +23,7 @@ import scipy.sparse.linalg as spla
 from sheafsynth.engine.analysis.spectra import AnalysisError
 from sheafsynth.engine.errors import SheafsynthError
 from sheafsynth.engine.model.dense import DENSE_MAX
+from sheafsynth.engine.model.spectra import start_vector
 
 __all__ = [
     "Mode",
@@ -152,7 +153,8 @@ def _sparse_probe_eigs(A, freqs_hz, fs, k):
             lu = spla.splu((Ac - sigma * I).tocsc())
             op = spla.LinearOperator((n, n), matvec=lambda x, lu=lu: lu.solve(np.asarray(x, dtype=complex)),
                                      dtype=complex)
-            mu, V = spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300)
+            mu, V = spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300,
+                              v0=start_vector(n))
         except spla.ArpackNoConvergence as exc:  # keep what did converge
             mu, V = exc.eigenvalues, exc.eigenvectors
         except (RuntimeError, spla.ArpackError):
@@ -325,7 +327,7 @@ def drift_modes(A, tol: float = 1e-9, *, partition=None, dense_max: int = DENSE_
         return out
     k = min(6, n - 2)
     try:
-        vals, vecs = spla.eigs(A, k=k, sigma=1.0 + 1e-7, which="LM")
+        vals, vecs = spla.eigs(A, k=k, sigma=1.0 + 1e-7, which="LM", v0=start_vector(A.shape[0]))
     except (RuntimeError, spla.ArpackError, spla.ArpackNoConvergence) as exc:
         raise AnalysisError(f"drift-mode search did not converge: {exc}") from None
     out = []

@@ -25,6 +25,7 @@ import scipy.sparse.linalg as spla
 
 from sheafsynth.engine.errors import SheafsynthError
 from sheafsynth.engine.model.dense import DENSE_MAX
+from sheafsynth.engine.model.spectra import start_vector
 
 __all__ = [
     "AnalysisError",
@@ -128,7 +129,8 @@ def _nearest_eigs(A, sigma: complex, k: int):
     M = (sp.csc_matrix(A, dtype=complex) - sigma * sp.identity(n, dtype=complex, format="csc")).tocsc()
     lu = spla.splu(M)
     op = spla.LinearOperator((n, n), matvec=lambda x: lu.solve(np.asarray(x, dtype=complex)), dtype=complex)
-    mu = spla.eigs(op, k=k, which="LM", return_eigenvectors=False, tol=1e-12, maxiter=max(1000, 10 * n))
+    mu = spla.eigs(op, k=k, which="LM", return_eigenvectors=False, tol=1e-12, maxiter=max(1000, 10 * n),
+                   v0=start_vector(n))
     return sigma + 1.0 / mu
 
 
@@ -218,7 +220,8 @@ def spectral_radius(A, *, dense_max: int = DENSE_MAX) -> float:
         return float(np.max(np.abs(np.linalg.eigvals(dense))))
     k = min(6, n - 2)
     try:
-        ev = spla.eigs(A, k=k, which="LM", ncv=min(n - 1, 40), maxiter=100, tol=0, return_eigenvectors=False)
+        ev = spla.eigs(A, k=k, which="LM", ncv=min(n - 1, 40), maxiter=100, tol=0, return_eigenvectors=False,
+                           v0=start_vector(n))
         return float(np.max(np.abs(ev)))
     except (spla.ArpackNoConvergence, spla.ArpackError):
         pass

@@ -24,6 +24,19 @@ from sheafsynth.engine.ir.voicing import fade_samples
 __all__ = ["generate", "CDEF", "EMITTERS", "num", "dnum"]
 
 
+def each_block(prog: StepProgram, hook: str, *args) -> list[str]:
+    """The C lines of emitter hook ``hook`` for every block, in block order (``hook(*args, block)``)."""
+    out: list[str] = []
+    for b in prog.blocks:
+        out.extend(getattr(emitter(b), hook)(*args, b))
+    return out
+
+
+def per_tuner(prog: StepProgram, *templates: str) -> list[str]:
+    """Each template once per tuning allpass, ``{k}`` replaced by its loop index, grouped by block."""
+    return [t.format(k=b.loop) for b in prog.blocks if b.tune_symbol for t in templates]
+
+
 def _voice_loop(prog: StepProgram, ctx: LoopContext, name: str) -> str:
     """One specialised sample loop for a voice over [a, b)."""
     L: list[str] = []
@@ -38,14 +51,9 @@ def _voice_loop(prog: StepProgram, ctx: LoopContext, name: str) -> str:
     w("    float exy = v->exc_y;")
     w("    const float exa = v->exc_amp, exq = v->exc_pole;")
     w("    (void)exq;")
-    for b in prog.blocks:
-        L.extend(emitter(b).loop_locals(ctx, b))
-    for b in prog.blocks:
-        if b.tune_symbol:
-            w(f"    const float t{b.loop} = v->tune{b.loop};")
-            w(f"    const float tc{b.loop} = v->tunec{b.loop};")
-            w(f"    (void)t{b.loop};")
-            w(f"    (void)tc{b.loop};")
+    L.extend(each_block(prog, "loop_locals", ctx))
+    L.extend(per_tuner(prog, "    const float t{k} = v->tune{k};", "    const float tc{k} = v->tunec{k};",
+                       "    (void)t{k};", "    (void)tc{k};"))
     body: list[str] = []
     o = body.append
     # body line -> the same line without the excitation's terms, for the loop
@@ -72,8 +80,7 @@ def _voice_loop(prog: StepProgram, ctx: LoopContext, name: str) -> str:
                   "        exy = (1.0f - exq) * ss_noise_value(rng) + exq * exy;",
                   "        const float x0 = exa * exy;"]
     exc_off = ["        const float x0 = 0.0f;"]
-    for b in prog.blocks:                       # step 2
-        body.extend(emitter(b).output_lines(ctx, b))
+    body.extend(each_block(prog, "output_lines", ctx))  # step 2
     for bi in prog.order:                       # step 3
         b = prog.blocks[bi]
         gather(b)
@@ -83,8 +90,7 @@ def _voice_loop(prog: StepProgram, ctx: LoopContext, name: str) -> str:
     for b in prog.blocks:
         if not b.feedthrough:
             gather(b)
-    for b in prog.blocks:                       # step 5
-        body.extend(emitter(b).update_lines(ctx, b))
+    body.extend(each_block(prog, "update_lines", ctx))  # step 5
     o("        pos++;")
     sum_line("        const float y = ", prog.out_terms)
     o("        out[n] = y;")
@@ -127,8 +133,7 @@ def _voice_loop(prog: StepProgram, ctx: LoopContext, name: str) -> str:
     w("    v->rng = rng;")
     w("    v->exc_left = exl;")
     w("    v->exc_y = exy;")
-    for b in prog.blocks:
-        L.extend(emitter(b).save_lines(ctx, b))
+    L.extend(each_block(prog, "save_lines", ctx))
     w("    (void)S;")
     w("    return (gpk <= (float)SSK_GUARD && isfinite(gsum)) ? gpk : -1.0f;")
     w("}")
@@ -235,18 +240,12 @@ def generate(prog: StepProgram) -> str:
     ramps = [str(n) for n in prog.ramp_samples()] or ["1"]
     w(f"static const int32_t ssk_param_ramp[{len(ramps)}] = {{{', '.join(ramps)}}};")
     w("")
-    for b in prog.blocks:
-        L.extend(emitter(b).tables(prog, b))
+    L.extend(each_block(prog, "tables", prog))
     w("typedef struct ssk_voice {")
     w("    SS_VOICE_COMMON")
-    for b in prog.blocks:
-        L.extend(emitter(b).voice_scalars(prog, b))
-    for b in prog.blocks:
-        if b.tune_symbol:
-            w(f"    float tune{b.loop};")
-            w(f"    float tunec{b.loop};")
-    for b in prog.blocks:
-        L.extend(emitter(b).voice_arrays(prog, b))
+    L.extend(each_block(prog, "voice_scalars", prog))
+    L.extend(per_tuner(prog, "    float tune{k};", "    float tunec{k};"))
+    L.extend(each_block(prog, "voice_arrays", prog))
     w("} ssk_voice;")
     w("")
     w("typedef struct ssk_state {")
@@ -258,8 +257,7 @@ def generate(prog: StepProgram) -> str:
     w(f"    float ctraj[{max(1, ncoef)}][SSK_MAXB];")
     w("    float mix[SSK_MAXB];")
     w("    float scratch[SSK_MAXB];")
-    for b in prog.blocks:
-        L.extend(emitter(b).state_members(prog, b))
+    L.extend(each_block(prog, "state_members", prog))
     w("    ssk_voice voices[SSK_POLY];")
     w("} ssk_state;")
     w("")
@@ -280,20 +278,15 @@ def generate(prog: StepProgram) -> str:
     w("}")
     w("")
     w("static void ssk_voice_reset(ssk_voice *v) {")
-    for b in prog.blocks:
-        L.extend(emitter(b).reset_lines(prog, b))
-    for b in prog.blocks:
-        if b.tune_symbol:
-            w(f"    v->tune{b.loop} = 0.0f;")
-            w(f"    v->tunec{b.loop} = 1.0f;")
+    L.extend(each_block(prog, "reset_lines", prog))
+    L.extend(per_tuner(prog, "    v->tune{k} = 0.0f;", "    v->tunec{k} = 1.0f;"))
     w("    (void)v;")
     w("}")
     w("")
     w("static void ssk_release_gains(ssk_state *S, ssk_voice *v) {")
     w("    const double period = SSK_RATE / ss_note_hz((double)v->note + (double)S->bend);")
     w("    (void)period;")
-    for b in prog.blocks:
-        L.extend(emitter(b).release_lines(prog, b))
+    L.extend(each_block(prog, "release_lines", prog))
     w("}")
     w("")
     w(_tune_fn(prog, coefs))
@@ -306,8 +299,7 @@ def generate(prog: StepProgram) -> str:
     w("static void ssk_voice_prefetch(const ssk_voice *v, int n) {")
     w("    uint32_t q;")
     w("    for (q = 0; q < (uint32_t)n + 16u; q += 16u) {")
-    for b in prog.blocks:
-        L.extend(emitter(b).prefetch_lines(prog, b))
+    L.extend(each_block(prog, "prefetch_lines", prog))
     w("    }")
     w("    (void)v;")
     w("}")
