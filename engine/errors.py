@@ -1,8 +1,7 @@
 """The project's exception family: every user-facing failure is one of these."""
 
-__all__ = ["SheafsynthError", "PresetError", "InputError", "BuildError", "AudioError"]
-
-
+__all__ = ["SheafsynthError", "PresetError", "UnstableError", "InputError", "BuildError", "AudioError",
+           "AnalysisError", "PlotUnavailable"]
 
 class SheafsynthError(Exception):
     """Base class: the CLI turns any of these into a one-line message."""
@@ -17,6 +16,10 @@ class PresetError(SheafsynthError):
         super().__init__(f"{path}: {message}" if path else message)
 
 
+class UnstableError(PresetError):
+    """The preset has a growing or undamped mode at some corner of its knob box."""
+
+
 class InputError(SheafsynthError):
     """A bad argument or input file other than a preset (MIDI file, option)."""
 
@@ -27,3 +30,11 @@ class BuildError(SheafsynthError):
 
 class AudioError(SheafsynthError):
     """The audio device could not be opened or failed while running."""
+
+
+class AnalysisError(SheafsynthError):
+    """The analysis was given unusable input or could not complete."""
+
+
+class PlotUnavailable(SheafsynthError):
+    """matplotlib (the plot extra) is not installed; the message says how to get it."""

@@ -20,8 +20,9 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.optimize import linprog
 
-from sheafsynth.engine.analysis.spectra import AnalysisError, dense
+from sheafsynth.engine.analysis.spectra import dense
 from sheafsynth.engine.analysis.storage import corner_blocks, l2_gain_common_storage
+from sheafsynth.engine.errors import AnalysisError
 
 __all__ = [
     "Norm",

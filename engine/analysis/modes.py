@@ -20,15 +20,14 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from sheafsynth.engine.analysis.spectra import AnalysisError
-from sheafsynth.engine.errors import SheafsynthError
+
+from sheafsynth.engine.errors import AnalysisError, PlotUnavailable
 from sheafsynth.engine.model.dense import DENSE_MAX
 from sheafsynth.engine.model.spectra import start_vector
 
 __all__ = [
     "Mode",
     "DriftMode",
-    "PlotUnavailable",
     "modes",
     "drift_modes",
     "all_poles",
@@ -39,10 +38,6 @@ __all__ = [
 
 NOTE_NAMES = ("C", "C#", "D", "D#", "E", "F", "F#", "G", "G#", "A", "A#", "B")
 
-
-
-class PlotUnavailable(SheafsynthError):
-    """matplotlib is not installed; the message says how to get it."""
 
 
 @dataclass(frozen=True)

@@ -34,7 +34,7 @@ from sheafsynth.engine.analysis.certify import certify_network, radius_upper_bou
 from sheafsynth.engine.analysis.fields import drift_count, field_radius
 from sheafsynth.engine.analysis.modes import drift_modes, modes
 from sheafsynth.engine.analysis.spectra import corners, spectral_radius
-from sheafsynth.engine.errors import PresetError
+from sheafsynth.engine.errors import PresetError, UnstableError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.ir.program import StepProgram, note_hz
 from sheafsynth.engine.locations import ENGINE_DIR, cache_dir
@@ -44,7 +44,6 @@ from sheafsynth.engine.preset import Preset
 __all__ = [
     "ANALYSIS_VERSION",
     "MARGIN",
-    "UnstableError",
     "mapped_box",
     "check_notes",
     "corners_and_centre",
@@ -59,10 +58,6 @@ __all__ = [
 ANALYSIS_VERSION = 3
 #: Tolerance on ρ = 1 (per sample): below 1 − MARGIN is stable, above 1 + MARGIN unstable.
 MARGIN = 1e-9
-
-
-class UnstableError(PresetError):
-    """The preset has a growing or undamped mode at some corner of its knob box."""
 
 
 # --------------------------------------------------------------------------

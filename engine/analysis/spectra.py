@@ -23,12 +23,11 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from sheafsynth.engine.errors import SheafsynthError
+from sheafsynth.engine.errors import AnalysisError
 from sheafsynth.engine.model.dense import DENSE_MAX
 from sheafsynth.engine.model.spectra import start_vector
 
 __all__ = [
-    "AnalysisError",
     "MAX_CORNER_PARAMETERS",
     "DENSE_ONE_OFF_MAX",
     "as_matrix",
@@ -37,9 +36,6 @@ __all__ = [
     "corners",
     "spectral_radius",
 ]
-
-class AnalysisError(SheafsynthError):
-    """The analysis was given unusable input or could not complete."""
 
 
 #: Corner enumeration is exponential; beyond this many varying parameters

@@ -39,7 +39,8 @@ from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
-from sheafsynth.engine.analysis.spectra import AnalysisError, dense
+from sheafsynth.engine.analysis.spectra import dense
+from sheafsynth.engine.errors import AnalysisError
 
 __all__ = [
     "optional_cvxpy",
@@ -188,7 +189,6 @@ def l2_gain_common_storage(blocks_at_corners, *, margin: float = 1e-6):
     Pv = np.array(P.value, dtype=float)
     gamma = _verified_l2_gain(Pv, blocks, strict=0.01 * margin)
     return None if gamma is None else (gamma, 0.5 * (Pv + Pv.T))
-
 
 
 def hexagon(lo: float, hi: float, d: float) -> list[tuple[float, float]]:

@@ -9,10 +9,11 @@ import jsonschema
 import numpy as np
 import pytest
 
-from sheafsynth.engine.analysis.report import UnstableError, check, guard, ramp_limits
+from sheafsynth.engine.analysis.report import check, guard, ramp_limits
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.locations import ENGINE_DIR, FACTORY_DIR
 from sheafsynth.engine.preset import factory_presets, load_preset
+from sheafsynth.engine.errors import UnstableError
 from tests.measure import cents, decay_t60, fundamental
 
 SCHEMA = json.loads((ENGINE_DIR / "analysis" / "schema" / "check-report.json").read_text())

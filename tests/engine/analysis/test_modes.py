@@ -7,9 +7,8 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from sheafsynth.engine.errors import SheafsynthError
+from sheafsynth.engine.errors import AnalysisError, PlotUnavailable, SheafsynthError
 from sheafsynth.engine.analysis.modes import (
-    PlotUnavailable,
     all_poles,
     drift_modes,
     modes,
@@ -17,7 +16,7 @@ from sheafsynth.engine.analysis.modes import (
     plot_report,
     t60_from_radius,
 )
-from sheafsynth.engine.analysis.spectra import AnalysisError
+
 from tests.reference_systems import ks_matrix
 
 FS = 48000.0

@@ -20,9 +20,9 @@ from sheafsynth.engine.analysis.gains import (
     linf_gain_convex_filter,
     network_small_gain,
 )
-from sheafsynth.engine.analysis.spectra import MAX_CORNER_PARAMETERS, AnalysisError, corners, spectral_radius
+from sheafsynth.engine.analysis.spectra import MAX_CORNER_PARAMETERS, corners, spectral_radius
 from sheafsynth.engine.analysis.storage import hexagon, l2_gain_common_storage, largest_ramp_slope, ramp_storage_gain
-from sheafsynth.engine.errors import SheafsynthError
+from sheafsynth.engine.errors import AnalysisError, SheafsynthError
 from tests.reference_systems import ks_matrix
 
 
