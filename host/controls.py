@@ -9,6 +9,20 @@ RPN 0/0 (default +-2 semitones), channel pressure.
 
 Curves are a table (name -> function of x in [0, 1]) so the schema, the docs
 and the code cannot disagree.
+
+Playable range: a note-on outside the preset's declared ``notes`` (lo, hi)
+is dropped and counted (``TranslatorCounters.out_of_range`` and the notes in
+``out_of_range_notes``); ``render`` and ``play`` report them.  Note-offs
+always pass (a note-off for a note that never started does nothing).  What
+the stability check covers of pitch today: frozen stability at the lowest,
+middle and highest declared notes without bend
+(``engine.analysis.report.check_notes``); a field's explicit-scheme limit
+at the highest note plus the preset's declared bend range
+(``engine.ir.fields.finish_fields``); delay rings sized for the lowest note
+minus ``engine.ir.program.MAX_BEND_SEMITONES`` (the kernel clamps bend to
+that).  The knob-motion certificate leaves bend out.  A bend range raised
+by RPN 0/0 beyond the declared one is taken as sent (the kernel's clamp
+still holds); nothing here enforces more.
 """
 
 from __future__ import annotations
@@ -56,12 +70,18 @@ class TranslatorCounters:
 
     received: int = 0
     ignored: int = 0                # other channel, unknown or malformed
+    out_of_range: int = 0           # note-ons dropped: outside the preset's playable range
+    out_of_range_notes: set[int] = field(default_factory=set)   # which notes those were
     last_control: str = ""          # "tone = 0.31 tap weight"
 
 
 @dataclass
 class MidiTranslator:
-    """Turns mido messages into kernel event tuples (offset, type, a, b, value)."""
+    """Turns mido messages into kernel event tuples (offset, type, a, b, value).
+
+    Note-ons outside ``preset.notes`` (the playable range, MIDI notes lo..hi)
+    give no event and are counted in ``counters``.
+    """
 
     preset: Preset
     param_index: dict[str, int]
@@ -120,6 +140,11 @@ class MidiTranslator:
             self.counters.ignored += 1
             return []
         if t == "note_on":
+            lo, hi = self.preset.notes
+            if msg.velocity > 0 and not lo <= msg.note <= hi:
+                self.counters.out_of_range += 1
+                self.counters.out_of_range_notes.add(msg.note)
+                return []
             out = [self._param(b, msg.velocity / 127.0, offset) for b in self.velocity if msg.velocity > 0]
             out.append((offset, V.EV_NOTE_ON, msg.note, msg.velocity, 0.0))
             return out

@@ -27,6 +27,7 @@ from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.preset import Preset
 from sheafsynth.host import bank
 from sheafsynth.host.controls import MidiTranslator
+from sheafsynth.host.guard import run_guard
 from sheafsynth.host.live.options import PlayOptions
 from sheafsynth.host.live.runtime import HostRuntime
 
@@ -77,10 +78,10 @@ def controls_doc(translator: MidiTranslator) -> list[dict]:
     return out
 
 
-def _checked_before(preset: Preset) -> bool:
-    """True when the analysis has this preset's report cached (so guarding it is quick)."""
+def _checked_before(preset: Preset, rate: float) -> bool:
+    """True when the analysis has this preset's report at ``rate`` Hz cached (so guarding it is quick)."""
     try:
-        return analysis.is_checked(preset)
+        return analysis.is_checked(preset, rate=rate)
     except Exception:   # an analysis that cannot read this preset: treat it as unchecked
         return False
 
@@ -105,19 +106,20 @@ class ProgramBank:
 
     # ---------------------------------------------------------------- start-up (main thread)
     def guard(self, preset: Preset, *, fatal: bool) -> list[str]:
-        """The frozen-stability guard's warnings; PresetError when the preset is not stable."""
+        """The frozen-stability guard's warnings at the session rate (bounded in time, host.guard);
+        PresetError when the preset is not stable or its stability is not decided."""
         try:
-            return list(analysis.guard(preset, allow_unstable=self.opts.allow_unstable, rate=self.rate) or [])
-        except SheafsynthError:
+            return run_guard(preset, self.rate, self.opts.allow_unstable)
+        except SheafsynthError as e:
             if fatal:
                 raise
-            raise PresetError("not stable (pass --allow-unstable to play it anyway)", preset.name) from None
+            raise PresetError(str(e), preset.name) from None      # the message names --allow-unstable
 
     def _make_slot(self, number: int | None, name: str, preset: Preset, values: dict[str, float],
                    ramps: dict[str, float] | None = None) -> ProgramSlot:
         o = self.opts
-        if ramps is None:
-            ramps = dict(analysis.ramp_limits(preset, self.rate))
+        if ramps is None:       # the proof of the preset as it starts (--set values applied)
+            ramps = dict(analysis.ramp_limits(preset.with_values(values) if values else preset, self.rate))
         insts = [Instrument(preset, rate=self.rate, max_block=o.buffer, seed=o.seed + k,
                             limiter=not o.no_limiter, min_ramp_s=ramps) for k in range(2)]
         defaults = {p.name: p.value for p in insts[0].program.params}
@@ -133,7 +135,7 @@ class ProgramBank:
     def _bank_slot(self, number: int, entry: bank.BankEntry) -> ProgramSlot | None:
         """A slot for a bank preset other than the start one, or None (said why) when it is left out."""
         preset = bank.load(str(entry.path))
-        if _checked_before(preset):
+        if _checked_before(preset, self.rate):
             warnings = self.guard(preset, fatal=False)
             slot = self._make_slot(number, entry.name, preset, {})
         elif entry.origin == "factory" or self.opts.allow_unstable:
@@ -211,6 +213,12 @@ class ProgramBank:
     def all_slots(self) -> list[ProgramSlot]:
         """Every slot once (the start preset may be outside the bank)."""
         return list({id(s): s for s in self.slots + [self.current] if s is not None}.values())
+
+    def out_of_range(self) -> tuple[int, list[int]]:
+        """Note-ons every program's translator ignored as outside its playable range: (count, notes sorted)."""
+        slots = self.all_slots()
+        notes = set().union(*(s.translator.counters.out_of_range_notes for s in slots))
+        return sum(s.translator.counters.out_of_range for s in slots), sorted(notes)
 
     # ---------------------------------------------------------------- program change (MIDI thread)
     def switch(self, number: int, rt: HostRuntime, *, pedal: int, bend_frac: float) -> None:

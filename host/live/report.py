@@ -15,7 +15,7 @@ from sheafsynth.host.live.runtime import HostCounters, HostRuntime, SlowCallback
 from sheafsynth.host.live.stall_probe import (CAUSE_ELSEWHERE, CAUSE_PREEMPTED, CAUSE_SLOW, EXPLAIN_WINDOW_S,
                                               ProbeReading, Stall, explain_coverage, explain_xruns, xrun_causes)
 
-__all__ = ["LOG_LIMIT", "MidiLog", "PairLog", "machine_report", "play_report", "xrun_summary"]
+__all__ = ["LOG_LIMIT", "MidiLog", "PairLog", "machine_report", "play_report", "xrun_summary", "latency_ms", "latency_text"]
 
 LOG_LIMIT = 200_000        # most MIDI messages / anchors kept for the report
 
@@ -121,6 +121,30 @@ def play_report(c: HostCounters, *, period_ns: float, head: dict, midi: dict, ke
         **tail,
     }
     return rep
+
+
+def latency_ms(buffer: int, rate: float, output_s: float | None) -> dict:
+    """Key-to-sound latency in ms: {"event_delay_ms", "output_ms", "key_to_sound_ms"}.
+
+    The runtime places every event one block after its arrival (csrc/host_rt.c:
+    ``buffer`` frames at ``rate`` Hz, so the timing inside the block is kept);
+    the block then reaches the listener after the output latency PortAudio
+    reports for the opened stream (``output_s``, s; None while no stream is
+    open, and then the output and the total are None too).
+    """
+    event = 1000.0 * buffer / rate
+    if output_s is None or not math.isfinite(output_s):
+        return {"event_delay_ms": event, "output_ms": None, "key_to_sound_ms": None}
+    out = 1000.0 * output_s
+    return {"event_delay_ms": event, "output_ms": out, "key_to_sound_ms": event + out}
+
+
+def latency_text(lat: dict) -> str:
+    """The start-up line's latency part, from a :func:`latency_ms` dict."""
+    if lat.get("key_to_sound_ms") is None:
+        return f"key to sound: one block ({lat['event_delay_ms']:.1f} ms) + an output latency PortAudio did not report"
+    return (f"key to sound {lat['key_to_sound_ms']:.1f} ms (one block {lat['event_delay_ms']:.1f} "
+            f"+ output {lat['output_ms']:.1f})")
 
 
 def xrun_summary(report: dict) -> str:

@@ -39,7 +39,8 @@ from sheafsynth.host.live.idle_latency import ShallowIdle
 from sheafsynth.host.live.midi import MidiError, MidiInputBase, default_api, open_midi_input, parse
 from sheafsynth.host.live.options import PlayOptions
 from sheafsynth.host.live.programs import ProgramBank, ProgramSlot, point_user_folder
-from sheafsynth.host.live.report import LOG_LIMIT, MidiLog, PairLog, machine_report, play_report, xrun_summary
+from sheafsynth.host.live.report import (LOG_LIMIT, MidiLog, PairLog, latency_ms, latency_text, machine_report,
+                                         play_report, xrun_summary)
 from sheafsynth.host.live.runtime import HostCounters, HostRuntime
 from sheafsynth.host.live.stall_probe import PLAY_TICKS, ProbeReading, Stall, StallProbe
 from sheafsynth.host.live.status import KEY_HELP, Keyboard, StatusInfo, StatusLine, format_status
@@ -89,6 +90,7 @@ class LiveHost:
         self.saved: list[str] = []
         self.device_index, self.hostapi, self.device_name = -1, "", ""
         self.device_rate = self.rate = 0.0
+        self.latency: dict = {}            # latency_ms() of the opened stream
 
     # ---------------------------------------------------------------- state every thread reads
     @property
@@ -148,7 +150,8 @@ class LiveHost:
             dev.default_rate if 8000 <= dev.default_rate <= 192000 else 48000.0)
         check_output_settings(dev.index, self.rate, dev.default_rate)      # before the long compile
         self.programs = ProgramBank(o, self.rate, self._say, self._program)
-        for line in self.programs.guard(first, fatal=True):
+        # the guard covers the preset as it starts: with the --set values applied
+        for line in self.programs.guard(first.with_values(o.sets) if o.sets else first, fatal=True):
             self._say(f"warning: {first.name}: {line}")
         self.programs.build(first)
 
@@ -218,7 +221,7 @@ class LiveHost:
         self.midi = midi
         try:
             audio = AudioOutput(device=self.device_index, rate=self.rate, blocksize=o.buffer,
-                                channels=2, max_block=o.buffer)
+                                channels=2, max_block=o.buffer, latency=o.buffer / self.rate)
         except SheafsynthError:
             midi.close()
             raise
@@ -247,6 +250,7 @@ class LiveHost:
         if abs(audio.rate - self.rate) > 1e-6:
             raise AudioError(f"the device runs at {audio.rate:g} Hz, not {self.rate:g} Hz; "
                              f"pass --rate {audio.rate:g}")
+        self.latency = latency_ms(o.buffer, self.rate, audio.stream_latency)
         if o.shallow_idle:
             self.idle = ShallowIdle().open()
             self._idle_held = self.idle.held
@@ -274,10 +278,9 @@ class LiveHost:
                 old_handlers[sig] = signal.signal(sig, lambda *_: self._stop.set())
             self._midi_thread = threading.Thread(target=self._midi_loop, name="sheafsynth-midi", daemon=True)
             self._midi_thread.start()
-            latency = o.buffer / self.rate * 1000.0
             midi_text = self.midi.description if self.midi is not None else "none"
             print(f"playing {self.slot.name} on {self.device_name} ({self.hostapi}), "
-                  f"{self.rate:g} Hz, buffer {o.buffer} ({latency:.1f} ms); MIDI {midi_text}; "
+                  f"{self.rate:g} Hz, buffer {o.buffer}; {latency_text(self.latency)}; MIDI {midi_text}; "
                   f"{'limiter OFF' if o.no_limiter else 'limiter on'}; Ctrl-C stops", file=self.out, flush=True)
             with Keyboard() as keys:
                 if keys.enabled and status.enabled:
@@ -381,15 +384,17 @@ class LiveHost:
             self._learned_seen = len(tr.learned)
         if status.enabled:
             period_ns = self.opts.buffer / self.rate * 1e9
-            with self._lock:
+            with self._lock:                # the MIDI thread counts out-of-range notes under it
                 self._rt.reset_peak()
+                out_of_range = self._bank.out_of_range()[0]
             status.show(format_status(StatusInfo(
                 preset=self.slot.name, program=self.slot.number,
                 voices=self.inst.counters["voices_active"],
                 polyphony=self.inst.program.polyphony,
                 load=c.cb_last_ns / period_ns, load_p999=c.load_percentile(99.9),
                 xruns=c.xruns, peak=c.peak_hold, last_control=tr.counters.last_control,
-                midi=self.midi.description if self.midi is not None else "none", learn=tr.learn_target)))
+                midi=self.midi.description if self.midi is not None else "none", learn=tr.learn_target,
+                latency_ms=self.latency.get("key_to_sound_ms"), out_of_range=out_of_range)))
 
     def _on_key(self, key: str, status: StatusLine) -> None:
         """q quits, s saves, l arms learn for the next parameter, ? shows the keys."""
@@ -475,6 +480,8 @@ class LiveHost:
                               for s in slots for cc, name in s.translator.learned],
                   "saved_presets": self.saved})
         rep["shallow_idle"] = self._idle_held
+        rep["latency_ms"] = self.latency or latency_ms(self.opts.buffer, self.rate, None)
+        rep["notes_out_of_range"], rep["notes_out_of_range_which"] = self._bank.out_of_range()
         if self._probe_result is not None:
             rep["machine"] = machine_report(*self._probe_result, self._rt, elapsed)
         if self._log_midi is not None:

@@ -39,6 +39,8 @@ class StatusInfo:
     last_control: str
     midi: str
     learn: str | None = None
+    latency_ms: float | None = None     # key to sound: one block of event delay + the output latency, ms
+    out_of_range: int = 0               # note-ons ignored: outside the preset's playable range
 
 
 def format_status(s: StatusInfo) -> str:
@@ -54,6 +56,10 @@ def format_status(s: StatusInfo) -> str:
              f"xruns {s.xruns}",
              f"peak {peak} dBFS",
              f"MIDI {s.midi}"]
+    if s.latency_ms is not None:
+        parts.insert(4, f"latency {s.latency_ms:.1f} ms")
+    if s.out_of_range:
+        parts.append(f"{s.out_of_range} note(s) out of range")
     if s.learn:
         parts.append(f"LEARN {s.learn}: move a knob")
     if s.last_control:

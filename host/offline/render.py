@@ -104,7 +104,12 @@ def midi_events(path: str | Path):
 
 def render_midi(inst: Instrument, path: str | Path, *, channel: int | None = None,
                 tail_max_s: float = TAIL_MAX_S) -> tuple[np.ndarray, dict]:
-    """Render a MIDI file; after the last event every note is released and the tail rendered."""
+    """Render a MIDI file; after the last event every note is released and the tail rendered.
+
+    Returns (mono float32 audio at ``inst.rate`` Hz, stats): "midi_messages" and "midi_ignored"
+    counted by the translator, "notes_out_of_range" (note-ons skipped: outside the preset's
+    playable range ``preset.notes``) and "notes_out_of_range_which" (those notes, sorted).
+    """
     events = midi_events(path)
     tr = MidiTranslator(inst.preset, inst.program.param_index, channel=channel)
     rate = inst.rate
@@ -145,7 +150,9 @@ def render_midi(inst: Instrument, path: str | Path, *, channel: int | None = Non
         k += BLOCK
         if inst.counters["voices_active"] == 0:
             break
-    stats = {"midi_messages": tr.counters.received, "midi_ignored": tr.counters.ignored}
+    stats = {"midi_messages": tr.counters.received, "midi_ignored": tr.counters.ignored,
+             "notes_out_of_range": tr.counters.out_of_range,
+             "notes_out_of_range_which": sorted(tr.counters.out_of_range_notes)}
     return np.concatenate(chunks) if chunks else np.zeros(0, np.float32), stats
 
 
