@@ -23,7 +23,9 @@ def _add(p: argparse.ArgumentParser) -> None:
                    help="MIDI system (default: JACK MIDI with JACK audio, else the platform's own)")
     p.add_argument("--device", metavar="NAME", help="audio output: index or part of the name (see `sheafsynth ports`)")
     p.add_argument("--rate", type=int, default=None, help="sample rate in Hz (default: the device's, else 48000)")
-    p.add_argument("--buffer", type=int, default=128, help="frames per audio block (default 128; latency = buffer / rate)")
+    p.add_argument("--buffer", type=int, default=128,
+                   help="frames per audio block (default 128); the output opens at buffer / rate latency "
+                        "and key to sound is one block more (shown at start-up)")
     p.add_argument("--channel", type=int, default=None, help="MIDI channel 1-16 to listen to (default: all)")
     p.add_argument("--seconds", type=float, default=None, help="stop by itself after this many seconds")
     p.add_argument("--record", metavar="FILE.wav", help="record exactly what goes to the output")
