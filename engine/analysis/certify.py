@@ -25,6 +25,9 @@ Routes, tried in order:
   analysis turns it into a ramp time (engine.analysis.report.ramp_limits).
 
 Every positive answer is re-verified with eigenvalues before it is used.
+Every route stops at the ``deadline`` it is given (grid points, cells,
+storage evaluations and bisection steps call ``Deadline.check``; see
+engine.analysis.deadline).
 Pitch bend retunes delay lengths at block boundaries; that is outside these
 proofs and the report says so.
 """
@@ -40,6 +43,7 @@ import numpy as np
 import scipy.sparse as sps
 from scipy.sparse.csgraph import connected_components
 
+from sheafsynth.engine.analysis.deadline import Deadline
 from sheafsynth.engine.analysis.fields import moving_symbols
 from sheafsynth.engine.analysis.gains import (CellGain, CellModel as GainCell, WireModel, build_gain_matrix, cell_gain,
                                               frozen_hinf, network_small_gain, peak_gain)
@@ -84,9 +88,13 @@ def _env(prog: StepProgram, theta: Mapping[str, float]) -> dict[str, float]:
     return env
 
 
-def _matrices_at(prog: StepProgram, b: Block) -> BlockAt:
-    """θ -> the block's (A, B, C, D) at parameters θ (other parameters at their defaults)."""
+def _matrices_at(prog: StepProgram, b: Block, deadline: Deadline) -> BlockAt:
+    """θ -> the block's (A, B, C, D) at parameters θ (other parameters at their defaults).
+
+    Each evaluation first checks ``deadline``, so a long storage search stops there.
+    """
     def at(theta: Mapping[str, float]) -> tuple[np.ndarray, ...]:
+        deadline.check()
         return _block_matrices(b, _env(prog, theta))
     return at
 
@@ -95,7 +103,8 @@ def _block_matrices(b: Block, env) -> tuple[np.ndarray, ...]:
     return tuple(np.atleast_2d(m.value(env)).reshape(m.rows, m.cols) for m in b.linear())
 
 
-def delay_lengths_fixed(prog: StepProgram, box: Box, notes, grid: int = 9) -> tuple[bool, str]:
+def delay_lengths_fixed(prog: StepProgram, box: Box, notes, grid: int = 9,
+                        deadline: Deadline | None = None) -> tuple[bool, str]:
     """Do knob motions keep every pitch delay's length (the retune hysteresis)?
 
     At note-on the fraction is chosen in [TAU_MIN, TAU_MIN + 1); knob motion
@@ -103,7 +112,9 @@ def delay_lengths_fixed(prog: StepProgram, box: Box, notes, grid: int = 9) -> tu
     length never changes if the needed total delay varies by at most
     min(TAU_MIN - KEEP_LO, KEEP_HI - TAU_MIN - 1) over the box, checked on a
     grid of ``grid`` points per parameter (the phase delays are smooth in θ).
+    Stops at ``deadline`` (engine.analysis.deadline.NotDecided).
     """
+    deadline = deadline or Deadline()
     names = list(box)
     allowed = min(TAU_MIN - KEEP_LO, KEEP_HI - TAU_MIN - 1.0)
     axes = [np.linspace(box[n][0], box[n][1], grid) for n in names]
@@ -113,6 +124,7 @@ def delay_lengths_fixed(prog: StepProgram, box: Box, notes, grid: int = 9) -> tu
             w = 2 * math.pi * f / prog.rate
             vals = []
             for pt in itertools.product(*axes) if names else [()]:
+                deadline.check()
                 env = _env(prog, dict(zip(names, pt)))
                 rest = 0.0
                 for st in lp.steps:
@@ -203,12 +215,18 @@ def _gain_cells(prog: StepProgram, box: Box, fixed_delays: bool):
     return cells, special, wires
 
 
-def certify_network(prog: StepProgram, box: Box, notes) -> NetworkCertificate:
-    """Try the routes of the module docstring in order; never claim more than proven."""
-    fixed, why = delay_lengths_fixed(prog, box, notes)
+def certify_network(prog: StepProgram, box: Box, notes, deadline: Deadline | None = None) -> NetworkCertificate:
+    """Try the routes of the module docstring in order; never claim more than proven.
+
+    Raises engine.analysis.deadline.NotDecided once ``deadline`` has passed.
+    """
+    deadline = deadline or Deadline()
+    deadline.step("certificate: delay lengths under knob motion")
+    fixed, why = delay_lengths_fixed(prog, box, notes, deadline=deadline)
     notes_out = ["pitch bend retunes delay lengths at block boundaries; the proof covers knob motion"]
     if not fixed:
         notes_out.append(why)
+    deadline.step("certificate: small-gain routes")
     cells, special, wires = _gain_cells(prog, box, fixed)
     for v in special.values():
         if isinstance(v, str):
@@ -217,6 +235,7 @@ def certify_network(prog: StepProgram, box: Box, notes) -> NetworkCertificate:
     for norm in ("l2", "linf"):
         gains, missing = [], None
         for c in cells:
+            deadline.check()
             g = cell_gain(c, norm)
             if g is None:
                 missing = c.name
@@ -241,10 +260,11 @@ def certify_network(prog: StepProgram, box: Box, notes) -> NetworkCertificate:
     # ramp-limited: parameter-dependent storage for the filters that need it
     if not fixed:
         return NetworkCertificate(False, "none", failing=why, notes=notes_out)
-    return _ramp_limited(prog, box, cells, special, wires, notes_out, results)
+    deadline.step("certificate: ramp-limited storage")
+    return _ramp_limited(prog, box, cells, special, wires, notes_out, results, deadline)
 
 
-def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> NetworkCertificate:
+def _ramp_limited(prog, box, cells, special, wires, notes_out, results, deadline: Deadline) -> NetworkCertificate:
     frozen_gains = {}
     for c in cells:
         if c.kind == "filter":
@@ -272,6 +292,7 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
     slopes: dict[str, float] = {}
     final: list[CellGain] = []
     for c in cells:
+        deadline.check()
         if c.kind != "filter":
             g = cell_gain(c, "l2")
             if g is None:
@@ -295,7 +316,7 @@ def _ramp_limited(prog, box, cells, special, wires, notes_out, results) -> Netwo
         names = sorted(s for s in _symbols(b) if s in box)
         A, B, _, _ = b.linear()
         state_fixed = not ((A.symbols | B.symbols) & set(box))
-        frac = largest_ramp_slope(_matrices_at(prog, b), names, box, target, state_fixed=state_fixed)
+        frac = largest_ramp_slope(_matrices_at(prog, b, deadline), names, box, target, state_fixed=state_fixed)
         if frac is None:
             return NetworkCertificate(False, "none", failing=f'filter "{c.name}": no storage proves gain '
                                       f"{target:.6f} even for slow knob motion", notes=notes_out)
@@ -338,7 +359,8 @@ def _largest_inflation(gains, wires, scaled: set[str]) -> float:
 # a fast frozen bound for large networks
 
 def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: float,
-                       n_freq: int = 4096, field_radius: Mapping[int, float] | None = None) -> float | None:
+                       n_freq: int = 4096, field_radius: Mapping[int, float] | None = None,
+                       deadline: Deadline | None = None) -> float | None:
     """An upper bound r on the spectral radius of the frozen voice at (θ, note).
 
     ρ(A) < r exactly when the network with every z replaced by r·z is
@@ -346,8 +368,10 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
     r^-N, filters sup |H(r e^{jω})| on an ``n_freq`` grid, static gains
     their norm) proves it when the scaled gain matrix has ρ < 1.  Bisection
     gives the smallest such r; None when even r = 1 is not proven (then the
-    caller falls back to an eigenvalue method).
+    caller falls back to an eigenvalue method).  Each bisection step checks
+    ``deadline`` (engine.analysis.deadline.NotDecided).
     """
+    deadline = deadline or Deadline()
     env = _env(prog, theta)
     lens = {}
     for lp, (n, a) in zip(prog.loops, tune_all(prog, note, env)):
@@ -405,6 +429,7 @@ def radius_upper_bound(prog: StepProgram, theta: Mapping[str, float], note: floa
         return out
 
     def ok(r: float) -> bool:
+        deadline.check()
         g = gains(r)
         if g is None:
             return False

@@ -7,8 +7,10 @@ The report (a plain dict, JSON shape in engine/analysis/schema/check-report.json
   and at its centre, at the lowest, middle and highest notes;
 * stability under knob motion: a certificate from sheafsynth.engine.analysis.certify
   ("any-speed", "ramp-limited" with the slope, or False with the reason);
-* modes: frequency, note, T60, inharmonicity and the cells carrying each of
-  the slowest-decaying partials (middle note, parameter defaults);
+* modes: the partials heard at the middle note (parameter defaults): the
+  lowest and the strongest from ``excite`` to the output, each with
+  frequency, note, T60, amplitude (dB), cents from the nearest harmonic of
+  the lowest strong partial and the cells carrying it;
 * drift: eigenvalues at z = 1, named by the cells that carry them;
 * fields: dim H⁰, face consistency and the λ²μ_max bound per corner.
 
@@ -22,22 +24,24 @@ import hashlib
 import json
 import math
 import os
+import shlex
 import tempfile
 from pathlib import Path
-from typing import Iterable
+from typing import Callable, Iterable
 
 import numpy as np
 import scipy.linalg as sla
 
 from sheafsynth.engine.analysis.assemble import assemble
 from sheafsynth.engine.analysis.certify import certify_network, radius_upper_bound
+from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S, Deadline, NotDecided
 from sheafsynth.engine.analysis.fields import drift_count, field_radius
-from sheafsynth.engine.analysis.modes import drift_modes, modes
-from sheafsynth.engine.analysis.spectra import corners, spectral_radius
+from sheafsynth.engine.analysis.modes import LISTED_DEFAULT, drift_modes, modes
+from sheafsynth.engine.analysis.spectra import corners, probe_radius, spectral_radius
 from sheafsynth.engine.errors import PresetError, UnstableError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.ir.program import StepProgram, note_hz
-from sheafsynth.engine.locations import ENGINE_DIR, cache_dir
+from sheafsynth.engine.locations import ENGINE_DIR, FACTORY_DIR, cache_dir
 from sheafsynth.engine.model.dense import DENSE_MAX
 from sheafsynth.engine.preset import Preset
 
@@ -100,8 +104,8 @@ def corners_and_centre(box) -> list[dict[str, float]]:
 # --------------------------------------------------------------------------
 # frozen stability
 
-def _exact_radius(A) -> tuple[float, complex | None]:
-    """Spectral radius by dense eigenvalues, or the rigorous sparse scan."""
+def _exact_radius(A, deadline: Deadline) -> tuple[float, complex | None]:
+    """Spectral radius by dense eigenvalues, or the rigorous sparse scan (stops at ``deadline``)."""
     n = A.shape[0]
     if n == 0:
         return 0.0, None
@@ -109,7 +113,7 @@ def _exact_radius(A) -> tuple[float, complex | None]:
         ev = sla.eigvals(A.toarray(), check_finite=False)
         i = int(np.argmax(np.abs(ev)))
         return float(abs(ev[i])), complex(ev[i])
-    return float(spectral_radius(A)), None
+    return float(spectral_radius(A, deadline=deadline)), None
 
 
 def _state_estimate(prog: StepProgram, note: float) -> int:
@@ -126,7 +130,7 @@ def _state_estimate(prog: StepProgram, note: float) -> int:
     return n
 
 
-def _exact_radius_drift(A) -> tuple[float, complex | None, int]:
+def _exact_radius_drift(A, deadline: Deadline) -> tuple[float, complex | None, int]:
     """(radius over the modes that are not DC drift, its eigenvalue, number of drift modes).
 
     A drift mode is a simple eigenvalue at exactly z = 1 (geometric = algebraic
@@ -136,7 +140,7 @@ def _exact_radius_drift(A) -> tuple[float, complex | None, int]:
     """
     n = A.shape[0]
     if n == 0 or n > DENSE_MAX:
-        r, z = _exact_radius(A)
+        r, z = _exact_radius(A, deadline)
         return r, z, 0
     M = A.toarray()
     ev = sla.eigvals(M, check_finite=False)
@@ -171,13 +175,18 @@ def _field_radii(prog: StepProgram, theta, note) -> dict[int, float]:
     return out
 
 
-def _slowest_mode_radius(sysm) -> float | None:
-    """Radius of the slowest-decaying partial found by shift-invert probes (a lower bound)."""
-    ms = modes(sysm.A, sysm.C, sysm.rate, count=4)
-    return max((m.radius for m in ms), default=None)
+def _slowest_mode_radius(sysm, deadline: Deadline) -> float | None:
+    """Largest |z| of the eigenvalues found by shift-invert probes on the unit circle (a lower bound on ρ).
+
+    Probes at DC, at 12 frequencies from 20 Hz to 0.45·rate and at Nyquist
+    (engine.analysis.spectra.probe_radius); stops at ``deadline``.
+    """
+    hz = np.geomspace(20.0, 0.45 * sysm.rate, 12)
+    angles = np.concatenate([[0.0], 2.0 * np.pi * hz / sysm.rate, [np.pi]])
+    return probe_radius(sysm.A, angles, deadline=deadline)
 
 
-def frozen(prog: StepProgram, box, notes) -> dict:
+def frozen(prog: StepProgram, box, notes, deadline: Deadline | None = None) -> dict:
     """Spectral radius at every corner (and centre) for every note.
 
     Small systems get dense eigenvalues.  Large ones (long delay lines at low
@@ -185,16 +194,21 @@ def frozen(prog: StepProgram, box, notes) -> dict:
     (engine.analysis.certify.radius_upper_bound) and, at the worst such point, the
     radius of the slowest partial found by shift-invert (a lower bound); the
     sparse eigenvalue scan is the fallback when no bound below 1 exists.
+    Every point and every eigen-solve stops at ``deadline``
+    (engine.analysis.deadline.NotDecided).
     """
+    deadline = deadline or Deadline()
     points = []
     worst = None
+    pts = corners_and_centre(box)
     for note in notes:
-        for theta in corners_and_centre(box):
+        for k, theta in enumerate(pts):
+            deadline.step(f"frozen radius at note {note}, point {k + 1} of {len(pts)}")
             z = None
             n_est = _state_estimate(prog, note)
             if n_est > DENSE_MAX:
                 fr = _field_radii(prog, theta, note)
-                bound = radius_upper_bound(prog, theta, note, field_radius=fr)
+                bound = radius_upper_bound(prog, theta, note, field_radius=fr, deadline=deadline)
                 if bound is not None:
                     pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": bound,
                           "exact": False, "upper_bound": bound, "states": n_est, "_sys": None}
@@ -207,17 +221,18 @@ def frozen(prog: StepProgram, box, notes) -> dict:
                     continue
             sysm = assemble(prog, theta, note)
             if sysm.n_states > DENSE_MAX:
-                # no bound below 1: an eigenvalue found outside the unit circle
-                # by shift-invert proves instability without the slow full scan
-                lo = _slowest_mode_radius(sysm)
-                if lo is not None and lo > 1.0 + MARGIN:
+                # no bound below 1: an eigenvalue found on or outside the unit circle
+                # by shift-invert proves the point not strictly stable without the
+                # slow full scan (its radius is then a lower bound)
+                lo = _slowest_mode_radius(sysm, deadline)
+                if lo is not None and lo >= 1.0 - MARGIN:
                     pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": lo,
                           "exact": False, "lower_bound": lo, "states": sysm.n_states}
                     points.append(pt)
                     if worst is None or lo > worst["radius"]:
                         worst = pt
                     continue
-            r, z, drift = _exact_radius_drift(sysm.A)
+            r, z, drift = _exact_radius_drift(sysm.A, deadline)
             exact = True
             pt = {"note": note, "corner": {k: float(v) for k, v in theta.items()}, "radius": r,
                   "exact": exact, "states": sysm.n_states}
@@ -261,10 +276,21 @@ def _code_digest() -> str:
 
 
 def _preset_hash(preset: Preset, notes, rate) -> str:
+    """Cache key of a report: the preset as loaded (``--set`` values included), notes, rate (Hz), code.
+
+    The rate is taken as a float, so 48000 and 48000.0 share one key.
+    """
     h = hashlib.sha256()
     h.update(json.dumps(preset.raw, sort_keys=True).encode())
-    h.update(json.dumps([list(notes), rate, ANALYSIS_VERSION, _code_digest()]).encode())
+    h.update(json.dumps([[int(n) for n in notes], float(rate), ANALYSIS_VERSION, _code_digest()]).encode())
     return h.hexdigest()[:24]
+
+
+#: Suffix of the cache key of a verdict (the report without modes) that render and play read.
+_VERDICT = "-v"
+#: Verdict keys this process could not decide, with the longest time limit (s) tried: a
+#: second request with no more time answers at once instead of trying again.
+_UNDECIDED: dict[str, float] = {}
 
 
 def _cache_path(key: str) -> Path:
@@ -280,12 +306,12 @@ def _cached(key: str):
 
 
 def is_checked(preset: Preset, notes: Iterable[int] | None = None, rate: float = 48000.0) -> bool:
-    """True when a full ``check`` report for ``preset`` is in the cache (so guarding it is quick).
+    """True when a verdict for ``preset`` at ``rate`` Hz is in the cache (so guarding it is quick).
 
-    ``sheafsynth check NAME`` stores its report at the default rate and notes.
+    ``sheafsynth check NAME`` and the guard of render and play store one.
     """
-    notes = check_notes(preset, notes)
-    return _cached(_preset_hash(preset, notes, rate)) is not None
+    key = _preset_hash(preset, check_notes(preset, notes), rate)
+    return _cached(key + _VERDICT) is not None or _cached(key) is not None
 
 
 def _store(key: str, report: dict) -> None:
@@ -301,24 +327,53 @@ def _store(key: str, report: dict) -> None:
 
 
 def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 48000.0,
-          n_modes: int = 8, use_cache: bool = True, with_modes: bool = True) -> dict:
-    """The full check report for ``preset`` (see the module docstring).
+          n_modes: int = LISTED_DEFAULT, use_cache: bool = True, with_modes: bool = True,
+          time_limit_s: float | None = None, progress: Callable[[str], None] | None = None) -> dict:
+    """The full check report for ``preset`` at ``rate`` Hz (see the module docstring).
 
     ``with_modes=False`` skips the modal part (the guard rails need only the
-    verdict and the certificate).
+    verdict and the certificate); it reuses a full report stored by an
+    earlier check of the same preset, notes and rate, and a full check also
+    stores its verdict for the guard.  ``time_limit_s`` (s, None for no
+    limit) is a deadline handed to every expensive step
+    (engine.analysis.deadline): past it, NotDecided is raised and nothing is
+    cached.  ``progress(text)`` hears the name of each step as it starts.
     """
     notes = check_notes(preset, notes)
-    key = _preset_hash(preset, notes, rate) + ("" if with_modes else "-v")
+    base = _preset_hash(preset, notes, rate)
+    key = base + (("" if n_modes == LISTED_DEFAULT else f"-m{n_modes}") if with_modes else _VERDICT)
     if use_cache:
-        hit = _cached(key)
+        hit = _cached(key) if with_modes else (_cached(key) or _cached(base))
         if hit is not None:
             return hit
+    tried = _UNDECIDED.get(base)
+    if time_limit_s is not None and tried is not None and time_limit_s <= tried:
+        raise NotDecided(tried, "an earlier attempt in this process")
+    deadline = Deadline(time_limit_s, progress)
     prog = lower(preset, rate)
     box = mapped_box(preset)
-    fz = frozen(prog, box, notes)
+    try:
+        report = _verdict(prog, preset, box, notes, deadline)
+    except NotDecided:
+        _UNDECIDED[base] = max(time_limit_s or 0.0, _UNDECIDED.get(base, 0.0))
+        raise
+    mid = notes[len(notes) // 2]
+    report["modes"], report["drift_modes"] = _modes(prog, mid, n_modes) if with_modes else ([], [])
+    report["mode_note"] = mid
+    report["fields"] = _fields(prog, preset, box)
+    if use_cache:
+        _store(key, report)
+        if with_modes:
+            _store(base + _VERDICT, {**report, "modes": [], "drift_modes": []})
+    return report
+
+
+def _verdict(prog: StepProgram, preset: Preset, box, notes: list[int], deadline: Deadline) -> dict:
+    """The report without modes: frozen stability and the certificate (stops at ``deadline``)."""
+    fz = frozen(prog, box, notes, deadline)
     report = {
         "preset": preset.name,
-        "rate": rate,
+        "rate": prog.rate,
         "notes": notes,
         "box": {k: list(v) for k, v in box.items()},
         "stable": fz["status"] in ("stable", "drift"),
@@ -339,18 +394,12 @@ def check(preset: Preset, notes: Iterable[int] | None = None, rate: float = 4800
         report["slope_per_s"] = {}
         report["failing"] = _describe_point(fz["worst"], fz["status"])
     else:
-        report.update(_certificate(prog, preset, box, notes))
+        report.update(_certificate(prog, preset, box, notes, deadline))
         if not report["radius_exact"] and report["certified"] is False:
             report["warnings"].append("the spectral radius of the largest networks is a sparse estimate and no "
                                       "certificate backs it")
     if report["stable"] and report["certified"] is False:
         report["warnings"].append("frozen-stable only: fast knob motion is not proven safe")
-    mid = notes[len(notes) // 2]
-    report["modes"], report["drift_modes"] = _modes(prog, mid, n_modes) if with_modes else ([], [])
-    report["mode_note"] = mid
-    report["fields"] = _fields(prog, preset, box)
-    if use_cache:
-        _store(key, report)
     return report
 
 
@@ -363,8 +412,8 @@ def _describe_point(pt: dict, status: str) -> str:
     return text
 
 
-def _certificate(prog, preset, box, notes) -> dict:
-    cert = certify_network(prog, box, notes)
+def _certificate(prog, preset, box, notes, deadline: Deadline) -> dict:
+    cert = certify_network(prog, box, notes, deadline)
     slopes = {k: v * prog.rate for k, v in cert.slope_per_sample.items()}
     return {"certified": cert.certified, "route": cert.route, "gain_loop_rho": cert.rho,
             "slope_per_s": slopes, "failing": cert.failing, "certificate_notes": cert.notes}
@@ -382,13 +431,19 @@ def _fields(prog, preset, box) -> list[dict]:
 
 
 def _modes(prog: StepProgram, note: int, count: int):
+    """The partials heard at ``note`` (parameter defaults): the lowest and the strongest from the
+    ``excite`` input to the output, by frequency (engine.analysis.modes.modes), and the drift modes."""
     sysm = assemble(prog, None, note)
-    ms = modes(sysm.A, sysm.C, prog.rate, count=count, partition=sysm.partition)
+    ms = modes(sysm.A, sysm.C, prog.rate, B=sysm.B, count=count, partition=sysm.partition)
     out = []
     for m in ms:
         share = sorted(m.energy_by_cell.items(), key=lambda kv: -kv[1])
+        amp = m.amplitude_db
         out.append({"freq_hz": float(m.freq_hz), "note": m.note_name, "cents_from_note": float(m.cents_from_note),
                     "t60_s": float(m.t60_s) if math.isfinite(m.t60_s) else None,
+                    "amplitude_db": float(amp) if amp is not None and math.isfinite(amp) else None,
+                    "amplitude_rank": int(m.amplitude_rank), "lowest": bool(m.lowest),
+                    "multiplicity": int(m.multiplicity),
                     "harmonic": int(m.harmonic_number), "cents_from_harmonic": float(m.cents_from_harmonic),
                     "radius": float(m.radius), "fundamental": bool(m.is_fundamental),
                     "cells": {k: round(float(v), 4) for k, v in share[:3]}})
@@ -403,13 +458,29 @@ def _modes(prog: StepProgram, note: int, count: int):
 # --------------------------------------------------------------------------
 # guard rails for render and play
 
-def guard(preset: Preset, allow_unstable: bool = False, rate: float = 48000.0) -> list[str]:
-    """Refuse a preset that is not frozen-stable; return warnings otherwise.
+def guard(preset: Preset, allow_unstable: bool = False, rate: float = 48000.0,
+          time_limit_s: float = GUARD_TIME_LIMIT_S, progress: Callable[[str], None] | None = None) -> list[str]:
+    """Refuse a preset that is not frozen-stable at ``rate`` Hz; return warnings otherwise.
 
+    Checks ``preset`` as given (``--set`` values applied are part of it) at
+    the check's default notes, reusing a stored ``check`` report of the same
+    preset, notes and rate.  Answers within about ``time_limit_s`` s: when
+    the analysis can neither prove nor refute stability by then, raises
+    NotDecided with a message naming the way forward (``check
+    --time-limit``, or ``--allow-unstable``, which makes it a warning).
     Raises UnstableError naming the offending mode and corner unless
-    ``allow_unstable``.
+    ``allow_unstable``.  ``progress`` as in `check`.
     """
-    report = check(preset, rate=rate, with_modes=False)
+    try:
+        report = check(preset, rate=rate, with_modes=False, time_limit_s=time_limit_s, progress=progress)
+    except NotDecided as e:
+        if allow_unstable:
+            return [f"playing a preset whose stability is not known: {e}"]
+        raise NotDecided(e.limit_s, e.step, hint=(
+            f"`sheafsynth check {_preset_arg(preset)} --rate {float(rate):g} --time-limit 600` (with the same --set "
+            "values) "
+            "can take longer and stores its answer for render and play; or pass --allow-unstable to play it "
+            "unchecked (the output limiter stays on)")) from None
     if not report["stable"]:
         msg = report.get("failing") or "not stable"
         if not allow_unstable:
@@ -419,13 +490,26 @@ def guard(preset: Preset, allow_unstable: bool = False, rate: float = 48000.0) -
     return list(report["warnings"])
 
 
-def ramp_limits(preset: Preset, rate: float = 48000.0) -> dict[str, float]:
-    """Ramp time (s) per parameter that keeps the kernel within a ramp-limited proof.
+def _preset_arg(preset: Preset) -> str:
+    """How the user names ``preset`` on a command line: its factory name, else its file, else its name."""
+    src = Path(preset.source) if preset.source.endswith(".json") else None
+    if src is None or src.parent.resolve() == FACTORY_DIR.resolve():
+        return shlex.quote(preset.name)
+    return shlex.quote(str(src))
+
+
+def ramp_limits(preset: Preset, rate: float = 48000.0, time_limit_s: float = GUARD_TIME_LIMIT_S) -> dict[str, float]:
+    """Ramp time (s) per parameter that keeps the kernel within a ramp-limited proof at ``rate`` Hz.
 
     The proof bounds the change per *sample*; the report states it per second
-    at the analysis rate, so the time is rescaled to the playing ``rate``.
+    at the analysis rate (``rate`` itself), so the time is rescaled to the
+    playing ``rate``.  Reuses the guard's stored verdict; no limits (an empty
+    dict) when nothing was decided within ``time_limit_s`` s.
     """
-    report = check(preset, with_modes=False)
+    try:
+        report = check(preset, rate=rate, with_modes=False, time_limit_s=time_limit_s)
+    except NotDecided:
+        return {}
     if report.get("certified") != "ramp-limited":
         return {}
     out = {}

@@ -23,6 +23,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from sheafsynth.engine.analysis.deadline import Deadline
 from sheafsynth.engine.errors import AnalysisError
 from sheafsynth.engine.model.dense import DENSE_MAX
 from sheafsynth.engine.model.spectra import start_vector
@@ -35,6 +36,7 @@ __all__ = [
     "validate_box",
     "corners",
     "spectral_radius",
+    "probe_radius",
 ]
 
 
@@ -119,12 +121,22 @@ def _square(A, what="A"):
     return A
 
 
-def _nearest_eigs(A, sigma: complex, k: int):
-    """The k eigenvalues of sparse A nearest to sigma (shift-invert ARPACK)."""
+def _checked(deadline: Deadline, f):
+    """``f`` that first calls ``deadline.check()`` (so an eigen-solver stops at the deadline)."""
+    def g(x):
+        deadline.check()
+        return f(x)
+    return g
+
+
+def _nearest_eigs(A, sigma: complex, k: int, deadline: Deadline):
+    """The k eigenvalues of sparse A nearest to sigma (shift-invert ARPACK; stops at ``deadline``)."""
     n = A.shape[0]
     M = (sp.csc_matrix(A, dtype=complex) - sigma * sp.identity(n, dtype=complex, format="csc")).tocsc()
+    deadline.check()
     lu = spla.splu(M)
-    op = spla.LinearOperator((n, n), matvec=lambda x: lu.solve(np.asarray(x, dtype=complex)), dtype=complex)
+    op = spla.LinearOperator((n, n), matvec=_checked(deadline, lambda x: lu.solve(np.asarray(x, dtype=complex))),
+                             dtype=complex)
     mu = spla.eigs(op, k=k, which="LM", return_eigenvectors=False, tol=1e-12, maxiter=max(1000, 10 * n),
                    v0=start_vector(n))
     return sigma + 1.0 / mu
@@ -138,7 +150,7 @@ def _covered_halfwidth(Rs: float, d: float, r: float) -> float:
     return float(np.arccos(np.clip(c, -1.0, 1.0)))
 
 
-def _scan_radius(A, k: int = 40, max_shifts: int = 600) -> float | None:
+def _scan_radius(A, deadline: Deadline, k: int = 40, max_shifts: int = 600) -> float | None:
     """Spectral radius of sparse A by shift-invert probes on a circle.
 
     Probes sit on |z| = Rs, just outside the bound R = min(‖A‖₁, ‖A‖∞) ≥ ρ(A).
@@ -147,7 +159,7 @@ def _scan_radius(A, k: int = 40, max_shifts: int = 600) -> float | None:
     found, ρ(A) = ρ̂ once the disks cover the annulus ρ̂ ≤ |z| ≤ Rs; the arc a
     disk covers at radius r is unimodal in r, so it suffices that the arcs at
     the two edge radii (their smaller one) cover the circle.  Returns None if
-    coverage was not reached.
+    coverage was not reached; NotDecided (engine.analysis.deadline) at ``deadline``.
     """
     n = A.shape[0]
     k = max(1, min(k, n - 2))
@@ -162,7 +174,7 @@ def _scan_radius(A, k: int = 40, max_shifts: int = 600) -> float | None:
 
     def probe(phi):
         s = Rs * complex(math.cos(phi), math.sin(phi))
-        lam = _nearest_eigs(A, s, k)
+        lam = _nearest_eigs(A, s, k, deadline)
         found.extend(lam)
         probes.append((phi, float(np.max(np.abs(lam - s)))))
 
@@ -198,15 +210,55 @@ def _scan_radius(A, k: int = 40, max_shifts: int = 600) -> float | None:
     return None
 
 
-def spectral_radius(A, *, dense_max: int = DENSE_MAX) -> float:
+def probe_radius(A, angles, *, k: int = 16, deadline: Deadline | None = None) -> float | None:
+    """Largest |λ| among the eigenvalues of sparse A nearest to e^{iφ} for each φ in ``angles`` (rad).
+
+    A lower bound on ρ(A) (shift-invert ARPACK at each angle, at most 300
+    iterations each; eigenvalues that converged are kept), or None when no
+    probe found any.  Quick evidence of a growing or undamped mode; not a
+    proof of stability.  Stops at ``deadline`` (NotDecided).
+    """
+    deadline = deadline or Deadline()
+    A = _square(A)
+    n = A.shape[0]
+    if n < 4:
+        return None
+    k = max(1, min(k, n - 2))
+    Ac = sp.csc_matrix(A, dtype=complex)
+    eye = sp.identity(n, dtype=complex, format="csc")
+    best: float | None = None
+    for phi in angles:
+        deadline.check()
+        sigma = complex(np.exp(1j * float(phi))) * (1.0 + 1e-9)
+        try:
+            lu = spla.splu((Ac - sigma * eye).tocsc())
+            op = spla.LinearOperator((n, n), dtype=complex,
+                                     matvec=_checked(deadline, lambda x, lu=lu: lu.solve(np.asarray(x, dtype=complex))))
+            mu = spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300,
+                           return_eigenvectors=False, v0=start_vector(n))
+        except spla.ArpackNoConvergence as exc:   # keep what did converge
+            mu = exc.eigenvalues
+        except (RuntimeError, spla.ArpackError):
+            continue
+        mu = np.asarray(mu)
+        mu = mu[mu != 0]
+        if mu.size:
+            r = float(np.max(np.abs(sigma + 1.0 / mu)))
+            best = r if best is None else max(best, r)
+    return best
+
+
+def spectral_radius(A, *, dense_max: int = DENSE_MAX, deadline: Deadline | None = None) -> float:
     """Largest |eigenvalue| of a square matrix (dense ndarray or scipy.sparse).
 
     Dense LAPACK up to `dense_max` states.  Larger sparse matrices: ARPACK
     ``eigs(k, which='LM')``; when it does not converge (typical for delay
     networks, whose eigenvalues crowd a circle), shift-invert probes with a
     coverage proof (`_scan_radius`); then dense LAPACK up to
-    DENSE_ONE_OFF_MAX states; otherwise AnalysisError.
+    DENSE_ONE_OFF_MAX states; otherwise AnalysisError.  The sparse solvers
+    stop at ``deadline`` (engine.analysis.deadline.NotDecided).
     """
+    deadline = deadline or Deadline()
     A = _square(A)
     n = A.shape[0]
     if n == 0:
@@ -216,14 +268,16 @@ def spectral_radius(A, *, dense_max: int = DENSE_MAX) -> float:
         return float(np.max(np.abs(np.linalg.eigvals(dense))))
     k = min(6, n - 2)
     try:
-        ev = spla.eigs(A, k=k, which="LM", ncv=min(n - 1, 40), maxiter=100, tol=0, return_eigenvectors=False,
-                           v0=start_vector(n))
+        op = spla.LinearOperator(A.shape, matvec=_checked(deadline, A.dot), dtype=A.dtype)
+        ev = spla.eigs(op, k=k, which="LM", ncv=min(n - 1, 40), maxiter=100, tol=0, return_eigenvectors=False,
+                       v0=start_vector(n))
         return float(np.max(np.abs(ev)))
     except (spla.ArpackNoConvergence, spla.ArpackError):
         pass
-    rho = _scan_radius(A)
+    rho = _scan_radius(A, deadline)
     if rho is not None:
         return rho
+    deadline.check()
     if n <= DENSE_ONE_OFF_MAX:
         return float(np.max(np.abs(np.linalg.eigvals(A.toarray()))))
     raise AnalysisError(

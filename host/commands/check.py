@@ -15,6 +15,7 @@ import math
 import numpy as np
 
 from sheafsynth.engine.analysis.assemble import assemble
+from sheafsynth.engine.analysis.deadline import CHECK_TIME_LIMIT_S, GUARD_TIME_LIMIT_S
 from sheafsynth.engine.analysis.modes import all_poles, modes, plot_report
 from sheafsynth.engine.analysis.report import check
 from sheafsynth.engine.errors import InputError
@@ -33,6 +34,9 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--set", action="append", metavar="NAME=VALUE", help="check with a parameter changed")
     p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 96000))
     p.add_argument("--no-cache", action="store_true", help="recompute instead of reusing a stored report")
+    p.add_argument("--time-limit", type=float, default=CHECK_TIME_LIMIT_S, metavar="S",
+                   help=f"give up after S seconds with 'not decided' (default {CHECK_TIME_LIMIT_S:g}; "
+                        f"render and play allow {GUARD_TIME_LIMIT_S:g})")
 
 
 def _notes(text: str | None):
@@ -98,7 +102,10 @@ def render_text(r: dict) -> str:
 
 def _run(args: argparse.Namespace) -> int:
     preset = load_preset_arg(args.preset, args.set)
-    report = check(preset, _notes(args.notes), float(args.rate), use_cache=not args.no_cache)
+    if not (math.isfinite(args.time_limit) and args.time_limit > 0):
+        raise InputError(f"--time-limit {args.time_limit:g}: expected a positive number of seconds")
+    report = check(preset, _notes(args.notes), float(args.rate), use_cache=not args.no_cache,
+                   time_limit_s=args.time_limit)
     if args.plot:
         _plot(preset, report, args.plot, float(args.rate))
     if args.json:

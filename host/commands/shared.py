@@ -12,11 +12,12 @@ import sys
 from dataclasses import dataclass
 from typing import Callable
 
-from sheafsynth.engine.analysis.report import guard, ramp_limits
+from sheafsynth.engine.analysis.report import ramp_limits
 from sheafsynth.engine.errors import InputError
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.preset import Preset
 from sheafsynth.host import bank
+from sheafsynth.host.guard import run_guard
 
 __all__ = ["CAUTION", "Command", "parse_set", "load_preset_arg", "offline_instrument", "warn_if_unstable",
            "warn_limiter_off"]
@@ -78,6 +79,10 @@ def offline_instrument(args: argparse.Namespace, preset: Preset, knobs_move: boo
 
 
 def warn_if_unstable(args: argparse.Namespace, preset: Preset) -> None:
-    """Refuse presets that are not frozen-stable unless --allow-unstable; print warnings."""
-    for line in guard(preset, allow_unstable=getattr(args, "allow_unstable", False)):
+    """Refuse presets that are not frozen-stable at ``args.rate`` Hz unless --allow-unstable; print warnings.
+
+    ``preset`` is checked as it will sound (``--set`` values applied), in
+    bounded time with a progress line after 1 s (host.guard.run_guard).
+    """
+    for line in run_guard(preset, float(args.rate), bool(getattr(args, "allow_unstable", False))):
         print(f"warning: {line}", file=sys.stderr)
