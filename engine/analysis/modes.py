@@ -1,13 +1,22 @@
-"""Modes of a linear network: partials, decay times, tuning, drift.
+"""Modes of a linear network: the partials a listener hears, their decay, tuning, drift.
 
 Input is the one-sample update matrix A (n×n, dense or scipy.sparse), an
-output map C (p×n) and the sample rate fs in Hz.  Each eigenvalue z of A is
-a mode: frequency f = arg(z)·fs/(2π) Hz, amplitude factor |z| per sample,
-so a 60 dB decay (factor 10⁻³) takes m = −3/log10|z| samples and
+output map C (p×n), optionally the input map B (n×1, the ``excite`` input)
+and the sample rate fs in Hz.  Each eigenvalue z of A is a mode: frequency
+f = arg(z)·fs/(2π) Hz and amplitude factor r = |z| per sample.
 
-    T60 = 3 / (fs · (−log10 |z|))   seconds.
+* T60 is the time for a 60 dB decay (the reverberation-time definition of
+  ISO 3382-1), so from the pole radius r:
 
-Notes are MIDI-numbered with A4 = 440 Hz: f = 440·2^((n − 69)/12).
+      T60 = 60 dB / (−20·log10(r) · fs)   seconds.
+
+* Modal amplitude: with right eigenvector v and left eigenvector w
+  (wᴴv = 1) the impulse response from the input to the output is
+  y[n] = D·δ[n] + Σ (C v)(wᴴ B) z^(n−1); a conjugate pair sounds as a
+  decaying sinusoid whose envelope at n = 1 (the first output sample after
+  the impulse) is 2·|(C v)(wᴴ B)|, reported in dB re a unit impulse.  Equal eigenvalues (the degenerate pairs of a square drum)
+  are one partial: their residues are summed, which is what the output hears.
+* Notes are MIDI-numbered with A4 = 440 Hz: f = 440·2^((n − 69)/12).
 """
 
 from __future__ import annotations
@@ -28,6 +37,8 @@ from sheafsynth.engine.model.spectra import start_vector
 __all__ = [
     "Mode",
     "DriftMode",
+    "RANKINGS",
+    "LISTED_DEFAULT",
     "modes",
     "drift_modes",
     "all_poles",
@@ -37,19 +48,33 @@ __all__ = [
 ]
 
 NOTE_NAMES = ("C", "C#", "D", "D#", "E", "F", "F#", "G", "G#", "A", "A#", "B")
-
+#: How many partials ``sheafsynth check`` lists by default.
+LISTED_DEFAULT = 8
+#: How ``modes`` chooses which partials to list (see its docstring).
+RANKINGS = ("heard", "slowest")
+#: Partials quieter than this, relative to the strongest, are not heard (dB).
+AUDIBLE_RANGE_DB = 60.0
+#: Eigenvalues closer than this (relative) are one partial.
+CLUSTER_TOL = 1e-8
 
 
 @dataclass(frozen=True)
 class Mode:
-    """One partial (one of a conjugate pair).
+    """One partial (one of a conjugate pair, or one cluster of equal eigenvalues).
 
     freq_hz: Hz; t60_s: s (inf if |z| ≥ 1); radius: |z| per sample;
+    amplitude_db: peak amplitude of the partial in the impulse response from
+    the input B to the output C, dB re a unit impulse (None without B);
+    energy_db: the partial's energy at the output over its whole decay,
+    a²/(2(1 − r²)) for envelope a, dB re a unit impulse (None without B);
+    strength_rank: 1 = the strongest at the output (by that energy; without
+    B, by observability in its place); lowest: listed as one of the lowest;
     harmonic_number / cents_from_harmonic: nearest harmonic of the
     fundamental and the distance to it (cents); note_name / cents_from_note:
     nearest equal-tempered note (A4 = 440 Hz) and the distance (cents);
     energy_by_cell: share of the eigenvector's squared norm per cell (0..1);
     observability: |C v| for unit-norm eigenvector v (output weight);
+    multiplicity: how many equal eigenvalues make this partial;
     is_fundamental: this mode is the chosen fundamental.
     """
 
@@ -64,6 +89,11 @@ class Mode:
     eigenvalue: complex = 0j
     observability: float = 1.0
     is_fundamental: bool = False
+    amplitude_db: float | None = None
+    energy_db: float | None = None
+    strength_rank: int = 0
+    lowest: bool = False
+    multiplicity: int = 1
 
     def growth_db_per_s(self, fs: float) -> float:
         """Level change per second in dB (negative = decaying), fs in Hz."""
@@ -85,13 +115,29 @@ class DriftMode:
     grows: bool = False
 
 
+@dataclass
+class _Cluster:
+    """Equal eigenvalues z of A: right eigenvectors (columns of V, unit norm) and
+    their modal inputs wᴴB (None when unknown), so that the residue is C·V·bt;
+    err: relative uncertainty of bt (0 when exact)."""
+
+    z: complex
+    V: np.ndarray
+    bt: np.ndarray | None
+    err: float = 0.0
+
+
 def t60_from_radius(radius: float, fs: float) -> float:
-    """T60 in seconds of a mode with amplitude factor `radius` per sample."""
+    """T60 in seconds of a mode with amplitude factor `radius` per sample.
+
+    T60 = 60 dB / (−20·log10(radius)·fs): the time for a 60 dB decay
+    (ISO 3382-1 reverberation time definition).
+    """
     if radius <= 0.0:
         return 0.0
     if radius >= 1.0:
         return math.inf
-    return 3.0 / (float(fs) * (-math.log10(radius)))
+    return 60.0 / (-20.0 * math.log10(radius) * float(fs))
 
 
 def note_name(freq_hz: float) -> tuple[str, float]:
@@ -116,6 +162,17 @@ def _as_op(A):
     return A
 
 
+def _as_dense(M, n: int, what: str, *, rows: bool) -> np.ndarray:
+    """C (p×n, rows=True) or B (n×m, rows=False) as a dense 2-D array, shape checked."""
+    out = M.toarray() if sp.issparse(M) else np.atleast_2d(np.asarray(M, dtype=float))
+    if not rows and out.ndim == 2 and out.shape[0] == 1 and n != 1:
+        out = out.T
+    size = out.shape[1] if rows else out.shape[0]
+    if size != n:
+        raise AnalysisError(f"{what} has {size} {'columns' if rows else 'rows'} for {n} states")
+    return out
+
+
 def _partition(partition, n) -> dict[str, np.ndarray]:
     out = {}
     for name, ix in (partition or {}).items():
@@ -128,59 +185,168 @@ def _partition(partition, n) -> dict[str, np.ndarray]:
     return out
 
 
-def _shares(v, part) -> dict[str, float]:
-    e = np.abs(v) ** 2
+def _shares(V, part) -> dict[str, float]:
+    e = np.abs(V) ** 2
+    if e.ndim == 2:
+        e = e.sum(axis=1)
     tot = float(e.sum())
     if tot == 0.0:
         return {k: 0.0 for k in part}
     return {k: float(e[ix].sum()) / tot for k, ix in part.items()}
 
 
-def _sparse_probe_eigs(A, freqs_hz, fs, k):
-    """Eigenpairs of sparse A nearest to e^{iω} at each probe frequency."""
+def _group(z: np.ndarray) -> list[list[int]]:
+    """Indices of z grouped into clusters of equal eigenvalues (within CLUSTER_TOL, relative)."""
+    order = np.argsort(z.real, kind="stable")
+    group_of = np.full(len(z), -1)
+    groups: list[list[int]] = []
+    for pos, i in enumerate(order):
+        tol = CLUSTER_TOL * max(1.0, abs(z[i]))
+        j = pos - 1
+        while j >= 0 and z[i].real - z[order[j]].real <= tol:
+            if abs(z[order[j]] - z[i]) <= tol:
+                group_of[i] = group_of[order[j]]
+                groups[group_of[i]].append(int(i))
+                break
+            j -= 1
+        if group_of[i] < 0:
+            group_of[i] = len(groups)
+            groups.append([int(i)])
+    return groups
+
+
+def _clusters(z, V, bt=None, err=None) -> list[_Cluster]:
+    """Cluster eigenpairs (z, V) and attach their modal inputs ``bt`` (rows, one per column of V).
+
+    ``err``: relative uncertainty of each modal input (None: exact); a
+    cluster whose worst one exceeds 10⁻³, or whose eigenvectors do not span
+    as many directions as it has members, gets bt None.
+    """
+    out = []
+    for g in _group(np.asarray(z)):
+        zc = complex(np.mean(np.asarray(z)[g]))
+        Vc = V[:, g]
+        btc, e = None, 0.0 if err is None else float(np.max(err[g]))
+        if bt is not None and e <= 1e-3:
+            if len(g) == 1 or float(np.linalg.svd(Vc / np.linalg.norm(Vc, axis=0), compute_uv=False)[-1]) > 1e-6:
+                btc = bt[g]
+        out.append(_Cluster(zc, Vc, btc, e))
+    return out
+
+
+def _sparse_probe_eigs(A, freqs_hz, fs, k, B=None) -> list[_Cluster]:
+    """Eigen-clusters of sparse A nearest to e^{iω} at each probe frequency.
+
+    Shift-invert: one sparse LU of A − σI per probe serves the eigenvectors
+    and, when B is given, their modal inputs (``_modal_inputs``).
+    """
     n = A.shape[0]
     Ac = sp.csc_matrix(A, dtype=complex)
     I = sp.identity(n, dtype=complex, format="csc")
-    vals, vecs = [], []
+    found: list[_Cluster] = []
     for f in freqs_hz:
         sigma = complex(np.exp(2j * np.pi * f / fs)) * (1.0 + 1e-9)
         try:
             lu = spla.splu((Ac - sigma * I).tocsc())
-            op = spla.LinearOperator((n, n), matvec=lambda x, lu=lu: lu.solve(np.asarray(x, dtype=complex)),
-                                     dtype=complex)
-            mu, V = spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300,
-                              v0=start_vector(n))
-        except spla.ArpackNoConvergence as exc:  # keep what did converge
-            mu, V = exc.eigenvalues, exc.eigenvectors
-        except (RuntimeError, spla.ArpackError):
+        except RuntimeError:
             continue
+        mu, V = _arpack(lu, n, k)
         if len(mu) == 0:
             continue
-        vals.extend(sigma + 1.0 / mu)
-        vecs.extend(V.T)
-    if not vals:
+        bt = err = None
+        if B is not None:
+            bt, err = _modal_inputs(lu, V, mu, B)
+        for c in _clusters(sigma + 1.0 / mu, V, bt, err):
+            _merge(found, c)
+    if not found:
         raise AnalysisError("sparse eigensolver found no modes")
-    vals = np.asarray(vals)
-    vecs = np.asarray(vecs)
-    # drop duplicates found by neighbouring probes
-    keep: list[int] = []
-    for i, z in enumerate(vals):
-        if keep and np.min(np.abs(vals[keep] - z)) <= 1e-9 * max(1.0, abs(z)):
+    return found
+
+
+#: Shift-invert steps between two estimates of the modal inputs, and the most steps.
+PROJECTION_STRIDE, PROJECTION_STEPS = 3, 36
+
+
+def _modal_inputs(lu, V, mu, B) -> tuple[np.ndarray, np.ndarray]:
+    """Modal inputs wᴴB of the eigenvectors V (eigenvalues μ of (A − σI)⁻¹) without left eigenvectors.
+
+    x_m = (A − σI)⁻ᵐ B = Σ_j v_j (w_jᴴB) μ_jᵐ over all modes; projected on
+    span(V) the found modes' terms outgrow the others by (|μ_rest|/|μ_j|)ᵐ,
+    so the coefficient divided by μ_jᵐ converges to w_jᴴB, until rounding
+    (10⁻¹⁶ of the largest term, growing as (|μ_max|/|μ_j|)ᵐ) takes over.
+    Estimates every PROJECTION_STRIDE steps; each mode keeps the one that
+    agrees best with the one before.  Returns (wᴴB, relative disagreement);
+    a disagreement ≤ 10⁻³ means known.
+    """
+    Q, R = np.linalg.qr(V)
+    x = np.asarray(B, dtype=complex)[:, 0].copy()
+    log_scale = 0.0
+    log_mu = np.log(mu)
+    k = len(mu)
+    best = np.zeros(k, complex)
+    err = np.full(k, np.inf)
+    prev = None
+    for m in range(1, PROJECTION_STEPS + 1):
+        x = lu.solve(x)
+        s = float(np.linalg.norm(x))
+        if not (s > 0.0 and math.isfinite(s)):
+            break
+        x /= s
+        log_scale += math.log(s)
+        if m % PROJECTION_STRIDE:
             continue
-        keep.append(i)
-    return vals[keep], vecs[keep].T
+        c = np.linalg.lstsq(R, Q.conj().T @ x, rcond=1e-12)[0]
+        with np.errstate(over="ignore", invalid="ignore"):
+            est = c * np.exp(log_scale - m * log_mu)
+        if prev is not None:
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                e = np.abs(est - prev) / np.abs(est)
+            e = np.where(np.isfinite(e), e, np.inf)
+            better = e < err
+            best[better], err[better] = est[better], e[better]
+        prev = est
+    return best[:, None], err
 
 
-def _eigs(A, *, dense_max, fs, f_lo, f_hi, count):
+def _arpack(lu, n: int, k: int):
+    """k eigenpairs of largest magnitude of (A − σI)⁻¹, applied through its LU factors."""
+    op = spla.LinearOperator((n, n), matvec=lambda x: lu.solve(np.asarray(x, dtype=complex)), dtype=complex)
+    try:
+        return spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300,
+                         v0=start_vector(n))
+    except spla.ArpackNoConvergence as exc:  # keep what did converge
+        return exc.eigenvalues, exc.eigenvectors
+    except (RuntimeError, spla.ArpackError):
+        return np.zeros(0, complex), np.zeros((n, 0), complex)
+
+
+def _merge(found: list[_Cluster], c: _Cluster) -> None:
+    """Add cluster c unless a neighbouring probe found it already (keep the fuller copy: all of its
+    equal eigenvalues, then known modal inputs)."""
+    for i, old in enumerate(found):
+        if abs(old.z - c.z) <= 10 * CLUSTER_TOL * max(1.0, abs(c.z)):
+            if (c.V.shape[1], c.bt is not None, -c.err) > (old.V.shape[1], old.bt is not None, -old.err):
+                found[i] = c
+            return
+    found.append(c)
+
+
+def _eig_clusters(A, B, *, dense_max, fs, f_lo, f_hi, count) -> list[_Cluster]:
     n = A.shape[0]
     if n <= dense_max or not sp.issparse(A):
         dense = A.toarray() if sp.issparse(A) else A
         w, V = np.linalg.eig(dense)
-        return w, V
+        bt = None
+        if B is not None:
+            try:
+                bt = np.linalg.solve(V, B.astype(complex))
+            except np.linalg.LinAlgError:
+                bt = np.linalg.lstsq(V, B.astype(complex), rcond=None)[0]
+        return _clusters(w, V, bt=bt)
     n_probe = 12
     freqs = np.geomspace(max(f_lo, 1.0), max(f_hi, f_lo * 1.01, 2.0), n_probe)
     k = max(1, min(n - 2, max(2 * count, 16)))
-    return _sparse_probe_eigs(A, freqs, fs, k)
+    return _sparse_probe_eigs(A, freqs, fs, k, B)
 
 
 def modes(
@@ -188,7 +354,9 @@ def modes(
     C,
     fs: float,
     *,
+    B=None,
     count: int = 12,
+    rank: str = "heard",
     partition: Mapping[str, object] | None = None,
     f_lo_hz: float = 20.0,
     f_hi_hz: float | None = None,
@@ -196,46 +364,54 @@ def modes(
     strong_fraction: float = 0.1,
     dense_max: int = DENSE_MAX,
 ) -> list[Mode]:
-    """The `count` slowest-decaying audible partials of x⁺ = Ax, y = Cx.
+    """The partials of x⁺ = Ax + Bu, y = Cx that a listener hears, lowest first.
 
-    C may be None (every mode weighted 1); fs is the sample rate in Hz.
+    C may be None (every mode weighted 1); B may be None (no amplitudes:
+    observability |C v| stands in for the amplitude); fs in Hz.  A mode's
+    strength is the root of its energy at the output, a/√(2(1 − r²)) for
+    amplitude a and radius r, so a loud blip that dies in milliseconds
+    does not outrank a partial that rings.
 
     Audible: f_lo_hz ≤ f ≤ f_hi_hz (default min(20 kHz, 0.499·fs)); with
     include_edges, every mode including f = 0 and f = fs/2 (real
-    eigenvalues).  Only the upper one of each conjugate pair; modes with
-    observability below 1e-9 of the largest are dropped (they cannot be
-    heard at the output).  Sorted slowest-decaying first (largest |z|).
+    eigenvalues).  Only the upper one of each conjugate pair; equal
+    eigenvalues are one partial; modes weaker than 10⁻⁶ (−120 dB) of the
+    strongest (10⁻⁹ without B) are dropped (nothing reaches the output).
 
-    Fundamental rule: among the candidates, "strong" modes have
-    observability ≥ strong_fraction × the largest and T60 ≥ strong_fraction
-    × the longest; the fundamental is the lowest-frequency strong mode.
-    Harmonic number = round(f / f0) (at least 1).
+    Fundamental: "strong" modes have strength ≥ strong_fraction × the
+    strongest; the fundamental is the lowest-frequency strong mode.  Harmonic number = round(f / f0) (≥ 1).
+
+    rank "heard" (default): the ⌈count/2⌉ lowest partials within
+    AUDIBLE_RANGE_DB of the strongest (the fundamental always among them),
+    then the strongest of the rest up to ``count``; returned by frequency.
+    Ties in T60 therefore never hide the fundamental.  rank "slowest": the
+    ``count`` slowest-decaying (largest |z|), slowest first — the stability
+    probe's question, not a listener's.
 
     Large sparse A (> dense_max states): eigenvalues nearest to 12 probe
-    points e^{iω} log-spaced over the audible band (shift-invert); this
-    finds the slow modes near each probe, not a guaranteed global ranking.
+    points e^{iω} log-spaced over the audible band (shift-invert, one sparse
+    LU per probe); the lowest probe finds the lowest partials, the others a
+    sample of the band, not a guaranteed global ranking.
     partition: {cell name: slice or index array} over state indices.
     """
     if not (fs > 0.0):
         raise AnalysisError(f"sample rate must be positive, got {fs}")
     if count < 1:
         raise AnalysisError(f"count must be >= 1, got {count}")
+    if rank not in RANKINGS:
+        raise AnalysisError(f"rank must be one of {', '.join(RANKINGS)}, got {rank!r}")
     A = _as_op(A)
     n = A.shape[0]
     part = _partition(partition, n)
-    fs / 2.0
     f_hi = min(20000.0, 0.499 * fs) if f_hi_hz is None else float(f_hi_hz)
     if n == 0:
         return []
-    w, V = _eigs(A, dense_max=dense_max, fs=fs, f_lo=f_lo_hz, f_hi=f_hi, count=count)
-    if C is None:
-        Cm = None
-    else:
-        Cm = C.toarray() if sp.issparse(C) else np.atleast_2d(np.asarray(C, dtype=float))
-        if Cm.shape[1] != n:
-            raise AnalysisError(f"C has {Cm.shape[1]} columns for {n} states")
+    Cm = None if C is None else _as_dense(C, n, "C", rows=True)
+    Bm = None if B is None else _as_dense(B, n, "B", rows=False)
+    clusters = _eig_clusters(A, Bm, dense_max=dense_max, fs=fs, f_lo=f_lo_hz, f_hi=f_hi, count=count)
     cand = []
-    for i, z in enumerate(w):
+    for c in clusters:
+        z = c.z
         tol = 1e-12 * max(1.0, abs(z))
         if z.imag < -tol:
             continue  # the conjugate partner is kept instead
@@ -244,29 +420,48 @@ def modes(
             continue
         if not include_edges and (abs(z.imag) <= tol):
             continue
-        v = V[:, i]
-        v = v / max(np.linalg.norm(v), 1e-300)
-        seen = 1.0 if Cm is None else float(np.linalg.norm(Cm @ v))
-        cand.append((complex(z), f, v, seen))
+        V = c.V / np.maximum(np.linalg.norm(c.V, axis=0), 1e-300)
+        seen = 1.0 if Cm is None else float(np.linalg.norm(Cm @ V[:, 0]))
+        amp = None
+        if Bm is not None and c.bt is not None:
+            res = (np.ones((1, n)) if Cm is None else Cm) @ c.V @ c.bt
+            amp = float(np.linalg.norm(res)) * (2.0 if abs(z.imag) > tol else 1.0)
+        cand.append((z, f, V, seen, amp))
     if not cand:
         return []
-    omax = max(c[3] for c in cand)
-    cand = [c for c in cand if c[3] >= 1e-9 * omax]
+    with_amp = Bm is not None and any(c[4] is not None for c in cand)
+    level = np.array([(c[4] if c[4] is not None else 0.0) if with_amp else c[3] for c in cand])
+    ring = np.array([1.0 / math.sqrt(2.0 * max(1.0 - abs(c[0]) ** 2, 1e-15)) for c in cand])
+    strength = level * ring
+    floor = (1e-6 if with_amp else 1e-9) * float(strength.max())
+    keep = [i for i, c in enumerate(cand) if strength[i] >= floor or (with_amp and c[4] is None)]
+    cand = [cand[i] for i in keep]
+    strength = strength[keep]
+    ring = ring[keep]
     radii = np.array([abs(c[0]) for c in cand])
     t60s = np.array([t60_from_radius(r, fs) for r in radii])
-    obs = np.array([c[3] for c in cand])
-    tmax = np.max(t60s)
-    if math.isinf(tmax):
-        strong = (obs >= strong_fraction * obs.max()) & np.isinf(t60s)
-    else:
-        strong = (obs >= strong_fraction * obs.max()) & (t60s >= strong_fraction * tmax)
     freqs = np.array([c[1] for c in cand])
+    strong = strength >= strong_fraction * strength.max()
     positive = strong & (freqs > 0)
-    f0 = float(freqs[positive].min()) if positive.any() else None
-    order = np.argsort(-radii, kind="stable")[:count]
+    i0 = int(np.flatnonzero(positive)[np.argmin(freqs[positive])]) if positive.any() else None
+    f0 = float(freqs[i0]) if i0 is not None else None
+    by_strength = np.argsort(-strength, kind="stable")
+    strength_rank = np.empty(len(cand), dtype=int)
+    strength_rank[by_strength] = np.arange(1, len(cand) + 1)
+    lowest: set[int] = set()
+    if rank == "slowest":
+        chosen = list(np.argsort(-radii, kind="stable")[:count])
+    else:
+        heard = strength >= 10.0 ** (-AUDIBLE_RANGE_DB / 20.0) * strength.max()
+        low = [int(i) for i in np.argsort(freqs, kind="stable") if heard[i]][: (count + 1) // 2]
+        if i0 is not None and i0 not in low:
+            low = low[:-1] + [i0]
+        lowest = set(low)
+        rest = [int(i) for i in by_strength if int(i) not in lowest][: count - len(low)]
+        chosen = sorted(low + rest, key=lambda i: freqs[i])
     out = []
-    for i in order:
-        z, f, v, o = cand[i]
+    for i in chosen:
+        z, f, V, o, amp = cand[i]
         if f0 and f > 0:
             h = max(1, int(round(f / f0)))
             cents_h = 1200.0 * math.log2(f / (h * f0))
@@ -280,8 +475,11 @@ def modes(
             freq_hz=f, t60_s=float(t60s[i]), radius=float(radii[i]),
             cents_from_harmonic=cents_h, harmonic_number=h,
             note_name=name, cents_from_note=cents_n,
-            energy_by_cell=_shares(v, part), eigenvalue=z, observability=o,
-            is_fundamental=bool(f0 is not None and f == f0),
+            energy_by_cell=_shares(V, part), eigenvalue=complex(z), observability=o,
+            is_fundamental=bool(i == i0),
+            amplitude_db=None if amp is None else (20.0 * math.log10(amp) if amp > 0 else -math.inf),
+            energy_db=None if amp is None else (20.0 * math.log10(amp * ring[i]) if amp > 0 else -math.inf),
+            strength_rank=int(strength_rank[i]), lowest=i in lowest, multiplicity=V.shape[1],
         ))
     return out
 
@@ -430,7 +628,7 @@ def plot_report(
         ax_l.spines[side].set_visible(False)
 
     # 3. T60 bars
-    ax_t.set_title("Decay time T60 of the slowest partials", fontsize=10)
+    ax_t.set_title("Decay time T60 of the listed partials", fontsize=10)
     if ms:
         srt = sorted(ms, key=lambda m: m.freq_hz)
         labels = [f"{m.freq_hz:.0f} Hz {m.note_name}" for m in srt]

@@ -2,8 +2,9 @@
 
 Exit status 0 when the preset is stable at every corner and note, 1 when it
 is not, 2 for bad input.  ``--json`` prints the report (shape in
-engine/analysis/schema/check-report.json); ``--plot FILE.png`` draws poles, the
-partial ladder and T60 bars.
+engine/analysis/schema/check-report.json); ``--modes N`` sets how many
+partials are listed (the lowest and the strongest at the output, default
+8); ``--plot FILE.png`` draws poles, the partial ladder and T60 bars.
 """
 
 from __future__ import annotations
@@ -16,14 +17,17 @@ import numpy as np
 
 from sheafsynth.engine.analysis.assemble import assemble
 from sheafsynth.engine.analysis.deadline import CHECK_TIME_LIMIT_S, GUARD_TIME_LIMIT_S
-from sheafsynth.engine.analysis.modes import all_poles, modes, plot_report
+from sheafsynth.engine.analysis.modes import LISTED_DEFAULT, all_poles, modes, plot_report
 from sheafsynth.engine.analysis.report import check
 from sheafsynth.engine.errors import InputError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.preset import Preset
 from sheafsynth.host.commands.shared import Command, load_preset_arg
 
-__all__ = ["COMMAND", "render_text"]
+__all__ = ["COMMAND", "MODES_MAX", "render_text"]
+
+#: The most partials ``--modes`` lists.
+MODES_MAX = 64
 
 
 def _add(p: argparse.ArgumentParser) -> None:
@@ -34,6 +38,9 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--set", action="append", metavar="NAME=VALUE", help="check with a parameter changed")
     p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 96000))
     p.add_argument("--no-cache", action="store_true", help="recompute instead of reusing a stored report")
+    p.add_argument("--modes", metavar="N", default=str(LISTED_DEFAULT),
+                   help=f"how many partials to list: the lowest and the strongest (1..{MODES_MAX}, "
+                        f"default {LISTED_DEFAULT})")
     p.add_argument("--time-limit", type=float, default=CHECK_TIME_LIMIT_S, metavar="S",
                    help=f"give up after S seconds with 'not decided' (default {CHECK_TIME_LIMIT_S:g}; "
                         f"render and play allow {GUARD_TIME_LIMIT_S:g})")
@@ -48,8 +55,22 @@ def _notes(text: str | None):
         raise InputError(f"--notes {text!r}: expected MIDI note numbers separated by commas") from None
 
 
+def _count(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if not 1 <= n <= MODES_MAX:
+        raise InputError(f"--modes {text!r}: expected a whole number of partials from 1 to {MODES_MAX}")
+    return n
+
+
 def _fmt_t60(t) -> str:
     return "   inf" if t is None or not math.isfinite(t) else f"{t:6.2f}"
+
+
+def _fmt_db(v) -> str:
+    return "      -" if v is None else f"{v:+7.1f}"
 
 
 def render_text(r: dict) -> str:
@@ -83,12 +104,17 @@ def render_text(r: dict) -> str:
     for warn in r["warnings"]:
         w(f"warning: {warn}")
     w("")
-    w(f"slowest partials at note {r.get('mode_note')} (parameter defaults)")
-    w("     freq Hz   note        T60 s   harmonic  cents   cells")
+    w(f"partials heard at note {r.get('mode_note')} (parameter defaults): the lowest (L), then the strongest")
+    w("     freq Hz   note        T60 s    ampl dB  energy dB  rank   harmonic  cents    cells")
     for m in r["modes"]:
         cells = ", ".join(f"{k} {100 * v:.0f}%" for k, v in m.get("cells", {}).items())
-        w(f"  {m['freq_hz']:10.3f}   {m['note']:<5} {m['cents_from_note']:+6.1f}  {_fmt_t60(m['t60_s'])}   "
-          f"{m['harmonic']:>5}  {m['cents_from_harmonic']:+6.2f}   {cells}")
+        mark = ("L" if m.get("lowest") else " ") + ("*" if m.get("fundamental") else " ")
+        pair = f" x{m['multiplicity']}" if m.get("multiplicity", 1) > 1 else ""
+        w(f"{mark}{m['freq_hz']:10.3f}   {m['note']:<5} {m['cents_from_note']:+6.1f}  {_fmt_t60(m['t60_s'])}   "
+          f"{_fmt_db(m.get('amplitude_db'))}   {_fmt_db(m.get('energy_db'))}  {m.get('strength_rank', 0):>4}   "
+          f"{m['harmonic']:>5}  {m['cents_from_harmonic']:+7.2f}   {cells}{pair}")
+    w("  (L = lowest, * = fundamental: the lowest strong partial; cents from its nearest harmonic; "
+      "dB re a unit impulse at excite)")
     if r["drift_modes"]:
         for d in r["drift_modes"]:
             w(f"drift: eigenvalue 1 carried by {d['cells']}{' (grows)' if d.get('grows') else ''}")
@@ -104,8 +130,8 @@ def _run(args: argparse.Namespace) -> int:
     preset = load_preset_arg(args.preset, args.set)
     if not (math.isfinite(args.time_limit) and args.time_limit > 0):
         raise InputError(f"--time-limit {args.time_limit:g}: expected a positive number of seconds")
-    report = check(preset, _notes(args.notes), float(args.rate), use_cache=not args.no_cache,
-                   time_limit_s=args.time_limit)
+    report = check(preset, _notes(args.notes), float(args.rate), n_modes=_count(args.modes),
+                   use_cache=not args.no_cache, time_limit_s=args.time_limit)
     if args.plot:
         _plot(preset, report, args.plot, float(args.rate))
     if args.json:
@@ -121,7 +147,7 @@ def _plot(preset: Preset, report: dict, path: str, rate: float) -> None:
     sysm = assemble(prog, None, report["mode_note"])
     poles = all_poles(sysm.A) if sysm.n_states <= 1500 else np.array([m.eigenvalue for m in
                                                                          modes(sysm.A, sysm.C, rate, count=40)])
-    ms = modes(sysm.A, sysm.C, rate, count=12, partition=sysm.partition)
+    ms = modes(sysm.A, sysm.C, rate, B=sysm.B, count=max(12, len(report["modes"])), partition=sysm.partition)
     plot_report(path, [complex(p) for p in poles], ms, title=f"{preset.name} at note {report['mode_note']}",
                 spectral_radius=report["spectral_radius_max"])
     print(f"wrote {path}")

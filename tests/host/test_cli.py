@@ -148,3 +148,36 @@ def test_every_command_module_is_in_the_table_by_name():
     modules = {p.stem for p in Path(pkg.__file__).parent.glob("*.py")} - {"__init__", "shared"}
     names = [c.name for c in COMMANDS]
     assert sorted(names) == sorted(modules) and len(set(names)) == len(names)
+
+
+def plain_loop_file(tmp_path) -> Path:
+    """A delay of 100 samples in feedback with gain 0.99 (partials at k·48000/100 Hz)."""
+    doc = {"format": "sheafsynth-preset", "version": 1, "name": "plain-loop", "polyphony": 2,
+           "cells": [{"id": "line", "kind": "delay", "length": 100}],
+           "wires": [{"from": "excite", "to": "line"}, {"from": "line", "to": "line", "gain": 0.99},
+                     {"from": "line", "to": "out"}],
+           "excitation": {"kind": "impulse"}}
+    path = tmp_path / "plain-loop.json"
+    path.write_text(json.dumps(doc))
+    return path
+
+
+def test_check_modes_sets_how_many_partials_are_listed(tmp_path, capsys):
+    """A cyclic shift of N samples with gain g has its poles at g^(1/N)·e^(2πik/N):
+    the lowest partial is fs/N = 480 Hz, every partial a harmonic of it."""
+    path = plain_loop_file(tmp_path)
+    assert main(["check", str(path), "--json", "--modes", "5", "--no-cache"]) == 0
+    ms = json.loads(capsys.readouterr().out)["modes"]
+    assert len(ms) == 5 and ms[0]["freq_hz"] == pytest.approx(480.0, rel=1e-9) and ms[0]["fundamental"]
+    assert all(abs(m["cents_from_harmonic"]) < 1e-6 and m["amplitude_db"] is not None for m in ms)
+    assert main(["check", str(path), "--modes", "3", "--no-cache"]) == 0
+    out = capsys.readouterr().out
+    assert "ampl dB" in out and "energy dB" in out and "T60 s" in out
+    assert "480.000   B4" in out
+
+
+@pytest.mark.parametrize("bad", ["0", "65", "many"])
+def test_check_modes_out_of_range_is_one_line(tmp_path, capsys, bad):
+    assert main(["check", str(plain_loop_file(tmp_path)), "--modes", bad]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "--modes" in err and "1 to 64" in err

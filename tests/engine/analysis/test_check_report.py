@@ -129,14 +129,18 @@ def test_check_every_factory_preset_is_certified_and_well_formed(path):
 
 @pytest.mark.parametrize("name,note", [("porch-pluck", 57), ("cedar-box", 45)])
 def test_reported_modes_match_rendered_audio(name, note):
-    """Mode frequencies within 1 cent of the rendered peaks; T60 within 10 %."""
+    """Mode frequencies within 1 cent of the rendered peaks; T60 within 10 %.
+
+    The report lists the partials heard, short ones included (cedar-box's
+    body rings 0.2 s); a peak and a decay are measured from 0.1 s to 3 s, so
+    the first three listed that ring longer than 1 s are compared."""
     preset = load_preset(FACTORY_DIR / f"{name}.json")
     r = check(preset, notes=[note])
     inst = Instrument(preset, limiter=False)
     inst.note_on(note, 100)
     x = inst.render(48000 * 3).astype(np.float64)
     checked = 0
-    for m in r["modes"][:3]:
+    for m in [m for m in r["modes"] if m["t60_s"] is None or m["t60_s"] > 1.0][:3]:
         f = fundamental(x[4800:], 48000, m["freq_hz"])
         assert abs(cents(f, m["freq_hz"])) < 1.0, (m, f)
         if m["t60_s"] and m["t60_s"] < 30:
