@@ -17,7 +17,8 @@ import numpy as np
 
 from sheafsynth.engine.analysis.assemble import assemble
 from sheafsynth.engine.analysis.deadline import CHECK_TIME_LIMIT_S, GUARD_TIME_LIMIT_S
-from sheafsynth.engine.analysis.modes import LISTED_DEFAULT, all_poles, modes, plot_report
+from sheafsynth.engine.analysis.modes import LISTED_DEFAULT, all_poles, modes
+from sheafsynth.engine.analysis.plot import plot_report
 from sheafsynth.engine.analysis.report import check
 from sheafsynth.engine.errors import InputError
 from sheafsynth.engine.ir.lower import lower
