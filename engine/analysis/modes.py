@@ -382,7 +382,9 @@ def modes(
     strongest (10⁻⁹ without B) are dropped (nothing reaches the output).
 
     Fundamental: "strong" modes have strength ≥ strong_fraction × the
-    strongest; the fundamental is the lowest-frequency strong mode.  Harmonic number = round(f / f0) (≥ 1).
+    strongest and T60 ≥ strong_fraction × the longest (a body resonance
+    that dies in 0.2 s under a string ringing 7 s is heard, listed, but not
+    the pitch); the fundamental is the lowest-frequency strong mode.  Harmonic number = round(f / f0) (≥ 1).
 
     rank "heard" (default): the ⌈count/2⌉ lowest partials within
     AUDIBLE_RANGE_DB of the strongest (the fundamental always among them),
@@ -444,7 +446,9 @@ def modes(
     radii = np.array([abs(c[0]) for c in cand])
     t60s = np.array([t60_from_radius(r, fs) for r in radii])
     freqs = np.array([c[1] for c in cand])
-    strong = strength >= strong_fraction * strength.max()
+    tmax = float(np.max(t60s))
+    lasting = np.isinf(t60s) if math.isinf(tmax) else (t60s >= strong_fraction * tmax)
+    strong = (strength >= strong_fraction * strength.max()) & lasting
     positive = strong & (freqs > 0)
     i0 = int(np.flatnonzero(positive)[np.argmin(freqs[positive])]) if positive.any() else None
     f0 = float(freqs[i0]) if i0 is not None else None
