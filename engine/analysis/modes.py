@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Mapping
 
 import numpy as np
@@ -121,12 +122,12 @@ class DriftMode:
 @dataclass
 class _Cluster:
     """Equal eigenvalues z of A: right eigenvectors (columns of V, unit norm) and
-    their modal inputs wᴴB (None when unknown), so that the residue is C·V·bt;
-    err: relative uncertainty of bt (0 when exact)."""
+    y = Σ v (wᴴB), the part of B in their eigenspace (None when unknown), so
+    that the residue at the output is C·y; err: relative uncertainty of y."""
 
     z: complex
     V: np.ndarray
-    bt: np.ndarray | None
+    y: np.ndarray | None
     err: float = 0.0
 
 
@@ -218,22 +219,13 @@ def _group(z: np.ndarray) -> list[list[int]]:
     return groups
 
 
-def _clusters(z, V, bt=None, err=None) -> list[_Cluster]:
-    """Cluster eigenpairs (z, V) and attach their modal inputs ``bt`` (rows, one per column of V).
-
-    ``err``: relative uncertainty of each modal input (None: exact); a
-    cluster whose worst one exceeds 10⁻³, or whose eigenvectors do not span
-    as many directions as it has members, gets bt None.
-    """
+def _clusters(z, V, images=None) -> list[_Cluster]:
+    """Cluster eigenpairs (z, V); ``images(groups)`` gives each group's (y, err) (no B: None)."""
+    groups = _group(np.asarray(z))
+    ys = images(groups) if images is not None else [(None, 0.0)] * len(groups)
     out = []
-    for g in _group(np.asarray(z)):
-        zc = complex(np.mean(np.asarray(z)[g]))
-        Vc = V[:, g]
-        btc, e = None, 0.0 if err is None else float(np.max(err[g]))
-        if bt is not None and e <= 1e-3:
-            if len(g) == 1 or float(np.linalg.svd(Vc / np.linalg.norm(Vc, axis=0), compute_uv=False)[-1]) > 1e-6:
-                btc = bt[g]
-        out.append(_Cluster(zc, Vc, btc, e))
+    for g, (y, e) in zip(groups, ys):
+        out.append(_Cluster(complex(np.mean(np.asarray(z)[g])), V[:, g], y if e <= 1e-3 else None, e))
     return out
 
 
@@ -241,9 +233,15 @@ def _sparse_probe_eigs(A, freqs_hz, fs, k, B=None) -> list[_Cluster]:
     """Eigen-clusters of sparse A nearest to e^{iω} at each probe frequency.
 
     Shift-invert: one sparse LU of A − σI per probe serves the eigenvectors
-    and, when B is given, their modal inputs (``_modal_inputs``).
+    and, when B is given, their modal inputs (``_modal_images``).  With B the
+    Krylov search starts from B, so each eigenspace is entered along the
+    direction B excites (a degenerate pair's excited mix is always found).
     """
     n = A.shape[0]
+    v0 = start_vector(n)
+    if B is not None and np.linalg.norm(B) > 0:
+        b = np.asarray(B, dtype=float)[:, 0]
+        v0 = b / np.linalg.norm(b) + 1e-6 * v0 / np.linalg.norm(v0)
     Ac = sp.csc_matrix(A, dtype=complex)
     I = sp.identity(n, dtype=complex, format="csc")
     found: list[_Cluster] = []
@@ -253,13 +251,13 @@ def _sparse_probe_eigs(A, freqs_hz, fs, k, B=None) -> list[_Cluster]:
             lu = spla.splu((Ac - sigma * I).tocsc())
         except RuntimeError:
             continue
-        mu, V = _arpack(lu, n, k)
+        mu, V = _arpack(lu, n, k, v0)
         if len(mu) == 0:
             continue
-        bt = err = None
+        images = None
         if B is not None:
-            bt, err = _modal_inputs(lu, V, mu, B)
-        for c in _clusters(sigma + 1.0 / mu, V, bt, err):
+            images = partial(_modal_images, lu, V, mu, B)
+        for c in _clusters(sigma + 1.0 / mu, V, images):
             _merge(found, c)
     if not found:
         raise AnalysisError("sparse eigensolver found no modes")
@@ -270,25 +268,24 @@ def _sparse_probe_eigs(A, freqs_hz, fs, k, B=None) -> list[_Cluster]:
 PROJECTION_STRIDE, PROJECTION_STEPS = 3, 36
 
 
-def _modal_inputs(lu, V, mu, B) -> tuple[np.ndarray, np.ndarray]:
-    """Modal inputs wᴴB of the eigenvectors V (eigenvalues μ of (A − σI)⁻¹) without left eigenvectors.
+def _modal_images(lu, V, mu, B, groups) -> list[tuple[np.ndarray | None, float]]:
+    """Each group's part of B in its eigenspace, y = Σ v (wᴴB), without left eigenvectors.
 
     x_m = (A − σI)⁻ᵐ B = Σ_j v_j (w_jᴴB) μ_jᵐ over all modes; projected on
     span(V) the found modes' terms outgrow the others by (|μ_rest|/|μ_j|)ᵐ,
     so the coefficient divided by μ_jᵐ converges to w_jᴴB, until rounding
     (10⁻¹⁶ of the largest term, growing as (|μ_max|/|μ_j|)ᵐ) takes over.
-    Estimates every PROJECTION_STRIDE steps; each mode keeps the one that
-    agrees best with the one before.  Returns (wᴴB, relative disagreement);
+    A group's y is unique even when its vectors are not independent.
+    Estimates every PROJECTION_STRIDE steps; each group keeps the one that
+    agrees best with the one before.  Returns (y, relative disagreement);
     a disagreement ≤ 10⁻³ means known.
     """
-    Q, R = np.linalg.qr(V)
     x = np.asarray(B, dtype=complex)[:, 0].copy()
     log_scale = 0.0
     log_mu = np.log(mu)
-    k = len(mu)
-    best = np.zeros(k, complex)
-    err = np.full(k, np.inf)
-    prev = None
+    best: list[np.ndarray | None] = [None] * len(groups)
+    err = [math.inf] * len(groups)
+    prev: list[np.ndarray] | None = None
     for m in range(1, PROJECTION_STEPS + 1):
         x = lu.solve(x)
         s = float(np.linalg.norm(x))
@@ -298,25 +295,25 @@ def _modal_inputs(lu, V, mu, B) -> tuple[np.ndarray, np.ndarray]:
         log_scale += math.log(s)
         if m % PROJECTION_STRIDE:
             continue
-        c = np.linalg.lstsq(R, Q.conj().T @ x, rcond=1e-12)[0]
+        c = np.linalg.lstsq(V, x, rcond=1e-12)[0]
         with np.errstate(over="ignore", invalid="ignore"):
-            est = c * np.exp(log_scale - m * log_mu)
+            coef = c * np.exp(log_scale - m * log_mu)
+        est = [V[:, g] @ coef[g] for g in groups]
         if prev is not None:
-            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-                e = np.abs(est - prev) / np.abs(est)
-            e = np.where(np.isfinite(e), e, np.inf)
-            better = e < err
-            best[better], err[better] = est[better], e[better]
+            for i, (y, y0) in enumerate(zip(est, prev)):
+                ny = float(np.linalg.norm(y))
+                e = float(np.linalg.norm(y - y0)) / ny if ny > 0 and math.isfinite(ny) else math.inf
+                if math.isfinite(e) and e < err[i]:
+                    best[i], err[i] = y, e
         prev = est
-    return best[:, None], err
+    return list(zip(best, err))
 
 
-def _arpack(lu, n: int, k: int):
+def _arpack(lu, n: int, k: int, v0: np.ndarray):
     """k eigenpairs of largest magnitude of (A − σI)⁻¹, applied through its LU factors."""
     op = spla.LinearOperator((n, n), matvec=lambda x: lu.solve(np.asarray(x, dtype=complex)), dtype=complex)
     try:
-        return spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300,
-                         v0=start_vector(n))
+        return spla.eigs(op, k=k, which="LM", tol=1e-10, ncv=min(n - 1, 3 * k + 1), maxiter=300, v0=v0)
     except spla.ArpackNoConvergence as exc:  # keep what did converge
         return exc.eigenvalues, exc.eigenvectors
     except (RuntimeError, spla.ArpackError):
@@ -328,7 +325,7 @@ def _merge(found: list[_Cluster], c: _Cluster) -> None:
     equal eigenvalues, then known modal inputs)."""
     for i, old in enumerate(found):
         if abs(old.z - c.z) <= 10 * CLUSTER_TOL * max(1.0, abs(c.z)):
-            if (c.V.shape[1], c.bt is not None, -c.err) > (old.V.shape[1], old.bt is not None, -old.err):
+            if (c.V.shape[1], c.y is not None, -c.err) > (old.V.shape[1], old.y is not None, -old.err):
                 found[i] = c
             return
     found.append(c)
@@ -339,13 +336,13 @@ def _eig_clusters(A, B, *, dense_max, fs, f_lo, f_hi, count) -> list[_Cluster]:
     if n <= dense_max or not sp.issparse(A):
         dense = A.toarray() if sp.issparse(A) else A
         w, V = np.linalg.eig(dense)
-        bt = None
-        if B is not None:
-            try:
-                bt = np.linalg.solve(V, B.astype(complex))
-            except np.linalg.LinAlgError:
-                bt = np.linalg.lstsq(V, B.astype(complex), rcond=None)[0]
-        return _clusters(w, V, bt=bt)
+        if B is None:
+            return _clusters(w, V)
+        try:
+            bt = np.linalg.solve(V, B.astype(complex))[:, 0]
+        except np.linalg.LinAlgError:
+            bt = np.linalg.lstsq(V, B.astype(complex), rcond=None)[0][:, 0]
+        return _clusters(w, V, lambda groups: [(V[:, g] @ bt[g], 0.0) for g in groups])
     n_probe = 12
     freqs = np.geomspace(max(f_lo, 1.0), max(f_hi, f_lo * 1.01, 2.0), n_probe)
     k = max(1, min(n - 2, max(2 * count, 16)))
@@ -384,7 +381,8 @@ def modes(
     Fundamental: "strong" modes have strength ≥ strong_fraction × the
     strongest and T60 ≥ strong_fraction × the longest (a body resonance
     that dies in 0.2 s under a string ringing 7 s is heard, listed, but not
-    the pitch); the fundamental is the lowest-frequency strong mode.  Harmonic number = round(f / f0) (≥ 1).
+    the pitch); the fundamental is the lowest-frequency strong mode (the
+    lowest loud one when no loud mode lasts).  Harmonic number = round(f / f0) (≥ 1).
 
     rank "heard" (default): the ⌈count/2⌉ lowest partials within
     AUDIBLE_RANGE_DB of the strongest (the fundamental always among them),
@@ -428,8 +426,8 @@ def modes(
         V = c.V / np.maximum(np.linalg.norm(c.V, axis=0), 1e-300)
         seen = 1.0 if Cm is None else float(np.linalg.norm(Cm @ V[:, 0]))
         amp = None
-        if Bm is not None and c.bt is not None:
-            res = (np.ones((1, n)) if Cm is None else Cm) @ c.V @ c.bt
+        if Bm is not None and c.y is not None:
+            res = (np.ones((1, n)) if Cm is None else Cm) @ c.y
             amp = float(np.linalg.norm(res)) * (2.0 if abs(z.imag) > tol else 1.0)
         cand.append((z, f, V, seen, amp))
     if not cand:
@@ -448,8 +446,10 @@ def modes(
     freqs = np.array([c[1] for c in cand])
     tmax = float(np.max(t60s))
     lasting = np.isinf(t60s) if math.isinf(tmax) else (t60s >= strong_fraction * tmax)
-    strong = (strength >= strong_fraction * strength.max()) & lasting
-    positive = strong & (freqs > 0)
+    loud = strength >= strong_fraction * strength.max()
+    positive = loud & lasting & (freqs > 0)
+    if not positive.any():      # the loud ones all die early: the loudest stand in
+        positive = loud & (freqs > 0)
     i0 = int(np.flatnonzero(positive)[np.argmin(freqs[positive])]) if positive.any() else None
     f0 = float(freqs[i0]) if i0 is not None else None
     by_strength = np.argsort(-strength, kind="stable")
