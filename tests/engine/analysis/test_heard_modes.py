@@ -189,3 +189,20 @@ def test_a_short_body_resonance_is_listed_but_is_not_the_pitch():
     assert len(fund) == 1 and fund[0]["freq_hz"] == pytest.approx(440.0 * 2 ** ((62 - 69) / 12), abs=0.05)
     body = [m for m in r["modes"] if m["t60_s"] < 1.0 and m["freq_hz"] < fund[0]["freq_hz"]]
     assert body and body[0]["lowest"] and body[0]["harmonic"] == 1 and body[0]["cents_from_harmonic"] < -500
+
+
+def test_equal_strings_on_the_sparse_path_are_one_partial_with_an_amplitude():
+    """bridge-trio's three equal strings at note 36 (65.41 Hz, MIDI numbering, A4 = 440 Hz)
+    give 2,222 states: every eigenvalue comes three times.  The partials are listed
+    once each, with amplitudes, the lowest at the played note within 1 cent (the
+    tuning goal of the design, 0.5 cent, plus the analysis' rounding)."""
+    preset = load_preset(FACTORY_DIR / "bridge-trio.json")
+    sysm = assemble(lower(preset, FS), None, 36)
+    assert sysm.n_states > 600
+    ms = modes(sysm.A, sysm.C, FS, B=sysm.B, count=8)
+    assert all(m.amplitude_db is not None for m in ms)
+    f0 = 440.0 * 2 ** ((36 - 69) / 12)
+    assert ms[0].is_fundamental and abs(1200 * math.log2(ms[0].freq_hz / f0)) < 1.0
+    low = [m for m in ms if m.lowest]
+    assert [m.harmonic_number for m in low] == [1, 2, 3, 4]
+    assert all(abs(m.cents_from_harmonic) < 1.0 for m in low)
