@@ -1,7 +1,7 @@
 """The project's exception family: every user-facing failure is one of these."""
 
 __all__ = ["SheafsynthError", "PresetError", "UnstableError", "InputError", "BuildError", "AudioError",
-           "AnalysisError", "PlotUnavailable"]
+           "AnalysisError", "NotDecided", "PlotUnavailable"]
 
 class SheafsynthError(Exception):
     """Base class: the CLI turns any of these into a one-line message."""
@@ -38,3 +38,18 @@ class AnalysisError(SheafsynthError):
 
 class PlotUnavailable(SheafsynthError):
     """matplotlib (the plot extra) is not installed; the message says how to get it."""
+
+
+class NotDecided(AnalysisError):
+    """The analysis reached its deadline before it could prove or refute stability.
+
+    ``limit_s`` is the time limit in s, ``step`` the step it was in, ``hint``
+    (optional) the way forward, added to the message after a semicolon.
+    """
+
+    def __init__(self, limit_s: float, step: str, hint: str = ""):
+        self.limit_s = limit_s
+        self.step = step
+        text = f"stability neither proven nor refuted within {limit_s:g} s (stopped at: {step})"
+        super().__init__(f"{text}; {hint}" if hint else text)
+

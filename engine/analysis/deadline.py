@@ -19,9 +19,9 @@ from __future__ import annotations
 import time
 from typing import Callable
 
-from sheafsynth.engine.errors import AnalysisError
+from sheafsynth.engine.errors import AnalysisError, NotDecided
 
-__all__ = ["GUARD_TIME_LIMIT_S", "CHECK_TIME_LIMIT_S", "NotDecided", "Deadline"]
+__all__ = ["GUARD_TIME_LIMIT_S", "CHECK_TIME_LIMIT_S", "Deadline"]
 
 #: Time (s) the guard of render and play may spend before it answers "not decided" (with
 #: start-up and lowering, the whole command answers within 10 s on a 2-core machine).
@@ -29,19 +29,6 @@ GUARD_TIME_LIMIT_S = 7.0
 #: Default time (s) ``sheafsynth check`` may spend (generous; ``--time-limit`` changes it).
 CHECK_TIME_LIMIT_S = 1800.0
 
-
-class NotDecided(AnalysisError):
-    """The analysis reached its deadline before it could prove or refute stability.
-
-    ``limit_s`` is the time limit in s, ``step`` the step it was in, ``hint``
-    (optional) the way forward, added to the message after a semicolon.
-    """
-
-    def __init__(self, limit_s: float, step: str, hint: str = ""):
-        self.limit_s = limit_s
-        self.step = step
-        text = f"stability neither proven nor refuted within {limit_s:g} s (stopped at: {step})"
-        super().__init__(f"{text}; {hint}" if hint else text)
 
 
 class Deadline:

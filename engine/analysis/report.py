@@ -34,11 +34,11 @@ import scipy.linalg as sla
 
 from sheafsynth.engine.analysis.assemble import assemble
 from sheafsynth.engine.analysis.certify import certify_network, radius_upper_bound
-from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S, Deadline, NotDecided
+from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S, Deadline
 from sheafsynth.engine.analysis.fields import drift_count, field_radius
 from sheafsynth.engine.analysis.modes import LISTED_DEFAULT, drift_modes, modes
 from sheafsynth.engine.analysis.spectra import corners, probe_radius, spectral_radius
-from sheafsynth.engine.errors import PresetError, UnstableError
+from sheafsynth.engine.errors import NotDecided, PresetError, UnstableError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.ir.program import StepProgram, note_hz
 from sheafsynth.engine.locations import ENGINE_DIR, FACTORY_DIR, cache_dir

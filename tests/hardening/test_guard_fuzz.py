@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 
 from sheafsynth.engine.analysis import report
-from sheafsynth.engine.analysis.deadline import NotDecided
+from sheafsynth.engine.errors import NotDecided
 from sheafsynth.engine.errors import PresetError, UnstableError
 from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.locations import FACTORY_DIR

@@ -17,7 +17,8 @@ import sys
 import pytest
 
 from sheafsynth.engine.analysis import report
-from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S, Deadline, NotDecided
+from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S, Deadline
+from sheafsynth.engine.errors import NotDecided
 from sheafsynth.engine.errors import UnstableError
 from sheafsynth.engine.locations import FACTORY_DIR
 from sheafsynth.engine.preset import load_preset
