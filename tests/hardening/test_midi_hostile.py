@@ -25,6 +25,7 @@ from hypothesis import strategies as st
 from sheafsynth.engine.ir import voicing as V
 from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.program import LIMITER_CEILING
+from sheafsynth.engine.preset import factory_presets, load_preset
 from sheafsynth.host.controls import MidiTranslator
 from sheafsynth.host.live.midi import parse
 from tests.live import send_timeline
@@ -259,12 +260,14 @@ def _flood(rng: random.Random, n: int) -> list[list[int]]:
     return out
 
 
+CLEAN_NOTE = 57                          # inside every factory preset's playable range
 FILTERED_BY_PORT = {0xF1, 0xF8, 0xFE}   # MIDI time code, clock, active sensing: dropped by the port library
 
 
 @pytest.mark.live
 @pytest.mark.slow
 def test_hostile_midi_into_a_running_play(live, tmp_path):
+    assert all(load_preset(p).notes[0] <= CLEAN_NOTE <= load_preset(p).notes[1] for p in factory_presets())
     rng = random.Random(17)
     junk = _junk(rng)
     flood = _flood(rng, 5000 * 3)
@@ -272,8 +275,11 @@ def test_hostile_midi_into_a_running_play(live, tmp_path):
     t0 = timeline[-1][0] + 0.2
     timeline += [(t0 + i / 5000.0, m) for i, m in enumerate(flood)]
     t_clean = t0 + 3.0 + 0.5
+    # The junk holds program changes (one selects crate-bar, notes 33-62), and a note
+    # outside the current preset's playable range is dropped by design, so the clean
+    # note (57) lies inside every factory preset's range (36-62).
     clean = [(t_clean, [0xB0, 120, 0]), (t_clean + 0.001, [0xB0, 121, 0]),
-             (t_clean + 0.3, [0x90, 69, 100]), (t_clean + 1.3, [0x80, 69, 0])]
+             (t_clean + 0.3, [0x90, CLEAN_NOTE, 100]), (t_clean + 1.3, [0x80, CLEAN_NOTE, 0])]
     timeline += clean
     play = live.Play(tmp_path, "porch-pluck", t_clean + 2.5, extra=["--bank-dir", str(tmp_path / "bank")],
                      virtual="sshard-hostile")
@@ -303,7 +309,7 @@ def test_hostile_midi_into_a_running_play(live, tmp_path):
     # audio kept running: callbacks for the whole session, and the clean note sounds after the flood
     assert rep["callbacks"] >= 0.9 * rep["seconds"] * live.rate / live.block
     anchors = rep["timing"]["anchors"]
-    stamp_on = [s for s, b in rep["timing"]["midi"] if b == [0x90, 69, 100]][-1]
+    stamp_on = [s for s, b in rep["timing"]["midi"] if b == [0x90, CLEAN_NOTE, 100]][-1]
     ns = [a[1] for a in anchors]
     i = max(0, bisect.bisect_right(ns, stamp_on) - 1)
     f_on = anchors[i][0] + (stamp_on - anchors[i][1]) * live.rate / 1e9
