@@ -1,0 +1,76 @@
+"""``sheafsynth export``: a preset as an LV2 instrument plugin bundle.
+
+``export PRESET --lv2 DIR`` writes ``DIR/<name>.lv2/`` (manifest.ttl, the
+plugin's .ttl, the .so) through engine.backends.lv2.bundle, with one kernel
+per sample rate (Hz, ``--rates``; default every rate the bundle supports).
+Each rate's kernel is checked by the stability guard first (refused unless
+``--allow-unstable``) and lowered with the ramp limits (s) its certificate
+asks for, so knob moves in a plugin host stay inside the proof.  The limiter
+is always on in the plugin.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from sheafsynth.engine.analysis.report import ramp_limits
+from sheafsynth.engine.backends.lv2.bundle import DEFAULT_RATES, LV2_MAX_BLOCK, LV2_RATES, build_bundle
+from sheafsynth.engine.errors import InputError
+from sheafsynth.engine.ir.lower import lower
+from sheafsynth.engine.ir.program import StepProgram
+from sheafsynth.host.commands.shared import CAUTION, Command, load_preset_arg
+from sheafsynth.host.controls import DEFAULT_BEND_RANGE
+from sheafsynth.host.guard import run_guard
+
+__all__ = ["COMMAND", "parse_rates"]
+
+
+def _add(p: argparse.ArgumentParser) -> None:
+    p.add_argument("preset", metavar="PRESET", help="preset file or factory/user preset name")
+    p.add_argument("--lv2", metavar="DIR", required=True,
+                   help="write an LV2 plugin bundle DIR/<name>.lv2 (put it in ~/.lv2 for plugin hosts)")
+    p.add_argument("--rates", metavar="HZ,HZ", default=None,
+                   help="sample rates to build kernels for (default " + ",".join(str(r) for r in DEFAULT_RATES)
+                        + "; also 192000); the plugin refuses other rates")
+    p.add_argument("--set", action="append", metavar="NAME=VALUE",
+                   help="set a parameter's default value (repeatable)")
+    p.add_argument("--allow-unstable", action="store_true",
+                   help="export even if the preset fails the stability check (the limiter stays on)")
+
+
+def parse_rates(text: str | None) -> tuple[int, ...]:
+    """``--rates`` as sorted unique rates in Hz, each one of LV2_RATES; InputError naming a bad one."""
+    if text is None:
+        return DEFAULT_RATES
+    out = set()
+    for item in text.split(","):
+        item = item.strip()
+        try:
+            r = int(item)
+        except ValueError:
+            raise InputError(f"--rates {text!r}: {item!r} is not a whole number of Hz") from None
+        if r not in LV2_RATES:
+            raise InputError(f"--rates {text!r}: {r} Hz is not one of " + ", ".join(str(x) for x in LV2_RATES))
+        out.add(r)
+    return tuple(sorted(out))
+
+
+def _run(args: argparse.Namespace) -> int:
+    preset = load_preset_arg(args.preset, args.set)
+    rates = parse_rates(args.rates)
+    programs: dict[int, StepProgram] = {}
+    for rate in rates:
+        for line in run_guard(preset, float(rate), bool(args.allow_unstable)):
+            print(f"warning: {rate} Hz: {line}", file=sys.stderr)
+        programs[rate] = lower(preset, float(rate), LV2_MAX_BLOCK, None, ramp_limits(preset, float(rate)))
+    bend = next((c.range_semitones for c in preset.controls if c.source == "pitchbend"), DEFAULT_BEND_RANGE)
+    bundle = build_bundle(programs, preset.name, args.lv2, bend_range=float(bend))
+    print(f"wrote {bundle.path} ({bundle.uri}; {len(bundle.ports)} control port(s); rates "
+          + ", ".join(str(r) for r in bundle.rates) + " Hz)")
+    print(f"copy the folder to ~/.lv2 (or add {bundle.path.parent} to LV2_PATH) for plugin hosts to find it. "
+          + CAUTION, file=sys.stderr)
+    return 0
+
+
+COMMAND = Command("export", "write a preset as an LV2 instrument plugin bundle", _add, _run)
