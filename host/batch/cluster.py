@@ -1,0 +1,130 @@
+"""Where batch work runs: a dask.distributed LocalCluster sized to the machine, or a running scheduler.
+
+Every task is a plain function of picklable arguments, submitted with
+retries; a worker that dies mid-task (killed, out of memory) has its tasks
+run again elsewhere by the scheduler, and since every task is a pure
+function of its arguments (seeded noise, no shared state) the results are
+the same.  Results come back to the client, which alone writes files, so a
+remote cluster needs no shared folder.
+
+dask is imported lazily inside :func:`open_cluster` and :func:`run_tasks`:
+it takes about a second to import and only the batch commands need it.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import sys
+from contextlib import contextmanager
+from typing import Any, Callable, Iterator, Sequence
+
+from sheafsynth.engine.errors import InputError, SheafsynthError
+
+__all__ = ["CONNECT_TIMEOUT_S", "TASK_RETRIES", "BatchError", "machine_workers", "open_cluster", "run_tasks"]
+
+#: How long (s) to wait for a scheduler given with --scheduler before giving up.
+CONNECT_TIMEOUT_S = 5.0
+#: How often a task that raised is tried again (a lost worker's tasks are rerun by the scheduler anyway).
+TASK_RETRIES = 2
+
+
+class BatchError(SheafsynthError):
+    """A batch job failed: a task kept failing, or the cluster went away."""
+
+
+def machine_workers() -> int:
+    """Worker processes for a LocalCluster on this machine: one per CPU this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+@contextmanager
+def open_cluster(workers: int | None = None, scheduler: str | None = None,
+                 connect_timeout_s: float = CONNECT_TIMEOUT_S) -> Iterator[Any]:
+    """A ``distributed.Client``: to ``scheduler`` (an address such as tcp://host:8786) when given, else to a
+    LocalCluster of ``workers`` single-threaded worker processes (default: :func:`machine_workers`).
+
+    An unreachable scheduler raises InputError within about ``connect_timeout_s`` s.
+    """
+    # lazy: dask.distributed is heavy to import (module doc)
+    from distributed import Client, LocalCluster
+
+    if scheduler is not None:
+        try:
+            client = Client(scheduler, timeout=connect_timeout_s, set_as_default=False)
+        except (OSError, TimeoutError, ValueError, TypeError) as e:
+            why = str(e).splitlines()[0] if str(e) else type(e).__name__
+            raise InputError(f"--scheduler {scheduler}: no dask scheduler answered within "
+                             f"{connect_timeout_s:g} s ({why})") from None
+        try:
+            yield client
+        finally:
+            client.close()
+        return
+    n = machine_workers() if workers is None else int(workers)
+    if not 1 <= n <= 512:
+        raise InputError(f"--workers {n}: expected 1 to 512 worker processes")
+    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
+                           silence_logs=logging.ERROR)
+    try:
+        client = Client(cluster, set_as_default=False)
+        try:
+            yield client
+        finally:
+            client.close()
+    finally:
+        cluster.close()
+
+
+def _bar(total: int, label: str):
+    """A rich progress bar on stderr when it is a terminal, else None."""
+    if total == 0 or not sys.stderr.isatty():
+        return None
+    # lazy: rich is needed only on a terminal (start-up time)
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(), transient=True)
+
+
+def run_tasks(client: Any, fn: Callable[..., Any], args: Sequence[tuple], *, label: str,
+              on_result: Callable[[int, Any], None] | None = None, retries: int = TASK_RETRIES) -> list[Any]:
+    """Run ``fn(*a)`` for every ``a`` in ``args`` on the cluster; results in the order of ``args``.
+
+    ``on_result(index, result)`` runs on the client as each result arrives
+    (in completion order).  A progress bar shows on a terminal.  An engine
+    error raised by a task (a bad preset, say) is raised here as itself;
+    anything else becomes BatchError naming the task.
+    """
+    # lazy: dask.distributed is heavy to import (module doc)
+    from distributed import as_completed
+
+    futures = [client.submit(fn, *a, pure=False, retries=retries) for a in args]
+    index = {f.key: i for i, f in enumerate(futures)}
+    results: list[Any] = [None] * len(futures)
+    bar = _bar(len(futures), label)
+    task = bar.add_task(label, total=len(futures)) if bar else None
+    if bar:
+        bar.start()
+    try:
+        for fut in as_completed(futures, loop=client.loop):
+            i = index[fut.key]
+            if fut.status != "finished":
+                exc = fut.exception()
+                for f in futures:
+                    f.cancel()
+                if isinstance(exc, SheafsynthError):
+                    raise exc
+                raise BatchError(f"{label}: task {i + 1} of {len(futures)} failed after {retries} retries: "
+                                 f"{type(exc).__name__}: {exc}")
+            results[i] = fut.result()
+            if on_result is not None:
+                on_result(i, results[i])
+            if bar:
+                bar.update(task, advance=1)
+    finally:
+        if bar:
+            bar.stop()
+    return results
