@@ -111,14 +111,15 @@ def run_tasks(client: Any, fn: Callable[..., Any], args: Sequence[tuple], *, lab
     try:
         for fut in as_completed(futures, loop=client.loop):
             i = index[fut.key]
-            if fut.status != "finished":
-                exc = fut.exception()
+            if fut.status in ("error", "cancelled"):
+                exc = fut.exception() if fut.status == "error" else None
                 for f in futures:
                     f.cancel()
                 if isinstance(exc, SheafsynthError):
                     raise exc
-                raise BatchError(f"{label}: task {i + 1} of {len(futures)} failed after {retries} retries: "
-                                 f"{type(exc).__name__}: {exc}")
+                why = f"{type(exc).__name__}: {exc}" if exc is not None else "cancelled (did the cluster go away?)"
+                raise BatchError(f"{label}: task {i + 1} of {len(futures)} failed after {retries} retries: {why}")
+            # a result held by a worker that died is "lost": the scheduler computes it again and result() waits
             results[i] = fut.result()
             if on_result is not None:
                 on_result(i, results[i])
