@@ -36,6 +36,8 @@ Measurements (JSON keys):
     already compiled on disk.
 ``denormal_tail_ratio``
     a block deep in a note's decaying tail ÷ the first blocks of that note.
+``bake_two_vs_one_workers``
+    wall time of two dask workers baking 24 takes ÷ one worker, side by side (host/bench/bake_scaling.py).
 ``machine``
     CPU model, cores, compiler and flags, library versions.
 
@@ -48,6 +50,7 @@ import functools
 import time
 from typing import Callable
 
+from sheafsynth.host.bench.bake_scaling import bake_scaling
 from sheafsynth.host.bench.compile_load import compile_load
 from sheafsynth.host.bench.context import BenchContext
 from sheafsynth.host.bench.denormals import denormals
@@ -75,6 +78,7 @@ def run_bench(quick: bool = False, progress: Callable[[str], None] | None = None
         ("host_overhead_us_per_block", host_overhead),
         ("denormal_tail_ratio", denormals),
         ("torus4096_realtime_factor", fields),
+        ("bake_two_vs_one_workers", bake_scaling),
     ]
     for key, fn in items:
         ctx.item(key, functools.partial(fn, ctx))

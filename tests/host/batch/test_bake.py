@@ -22,6 +22,7 @@ import soundfile as sf
 
 from sheafsynth.engine.preset.load import factory_presets, load_preset
 from sheafsynth.host import cli
+from sheafsynth.host.commands import bake as bake_command
 from sheafsynth.host.batch.bakeset import MAP_NAME, samples_sha256, validate_map
 from sheafsynth.host.batch.takes import Take, TakeSettings, render_take
 
@@ -130,6 +131,27 @@ def test_rerun_skips_intact_takes_and_redoes_a_changed_one(baked, tmp_path, caps
     assert f"1 rendered, {N_TAKES - 1} unchanged" in capsys.readouterr().out
     assert samples_sha256(victim) == want
     assert _map(folder) == _map(two)
+
+
+def test_intact_rerun_starts_no_cluster_and_says_when_matplotlib_is_missing(baked, tmp_path, capsys, monkeypatch):
+    _, two = baked
+    folder = tmp_path / "set"
+    folder.mkdir()
+    for p in two.iterdir():
+        if p.suffix != ".png":
+            (folder / p.name).write_bytes(p.read_bytes())
+
+    def no_cluster(*a, **k):
+        raise AssertionError("a cluster was started for a set with nothing to render")
+
+    monkeypatch.setattr(bake_command, "open_cluster", no_cluster)
+    monkeypatch.setitem(sys.modules, "matplotlib", None)        # import matplotlib now raises ImportError
+    capsys.readouterr()
+    assert _bake(folder, "--workers", "2") == 0
+    cap = capsys.readouterr()
+    assert f"0 rendered, {N_TAKES} unchanged" in cap.out
+    assert cap.err.strip() == "contact sheet skipped: matplotlib is not installed (pip install 'sheafsynth[plot]')"
+    assert not (folder / "contact-sheet.png").exists()
 
 
 def test_loudness_is_normalized_per_bs1770():
