@@ -196,9 +196,16 @@ def bake_set(cluster: Callable[[], ContextManager[Any]], preset: Preset, takes: 
             on_take(entry)
 
     if todo:
-        with cluster() as client:
-            run_tasks(client, render_take, [(preset, t, settings) for t in todo], label="baking",
-                      on_result=landed)
+        try:
+            with cluster() as client:
+                run_tasks(client, render_take, [(preset, t, settings) for t in todo], label="baking",
+                          on_result=landed)
+        except BaseException:
+            try:            # keep the map of the takes that did land; the first error is the one to report
+                _write_map(out, document())
+            except SheafsynthError:
+                pass
+            raise
     doc = document()
     _write_map(out, doc)
     return BakeResult(map=doc, rendered=len(todo), skipped=len(takes) - len(todo), path=out / MAP_NAME)

@@ -12,6 +12,7 @@ map.json written there.
 
 from __future__ import annotations
 
+import os
 import tempfile
 import time
 from contextlib import ExitStack, nullcontext
@@ -56,13 +57,17 @@ def bake_scaling(ctx: BenchContext) -> None:
                 return time.perf_counter() - t0
             return timed
 
+        load_before = os.getloadavg()[0]
         times = interleave({"one": side(1), "two": side(2)}, reps)
+        load_after = os.getloadavg()[0]
     ratios = [b / a for a, b in zip(times["one"], times["two"])]
     s = spread(ratios)
     ctx.report["bake_two_vs_one_workers"] = s["median"]
     ctx.details["bake_two_vs_one_workers"] = {
         "ratio": s, "one_worker_s": spread(times["one"]), "two_workers_s": spread(times["two"]),
-        "preset": BAKE_PRESET, "takes": len(takes), "seconds_max": settings.seconds_max,
+        "preset": BAKE_PRESET, "cpus": os.cpu_count(),
+        # other programs' load caps what two workers can gain: 1-minute load average before and after
+        "load_average": [load_before, load_after], "takes": len(takes), "seconds_max": settings.seconds_max,
         "method": "two LocalClusters (1 and 2 single-thread worker processes) started and warmed first; "
                   "the same takes baked into fresh folders by each in alternation; wall time of bake_set",
     }
