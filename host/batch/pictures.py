@@ -87,7 +87,8 @@ def contact_sheet(path: Path, takes: Sequence[tuple[str, np.ndarray]], rate: flo
 
 def heat_map(path: Path, x_name: str, x: Sequence[float], y_name: str, y: Sequence[float],
              value: np.ndarray, unstable: np.ndarray, title: str) -> bool:
-    """Write a PNG heat map of ``value`` (shape len(y) x len(x)) with unstable cells marked by a cross.
+    """Write a PNG heat map of ``value`` (shape len(y) x len(x)) with unstable cells marked by a cross;
+    values of both signs get a diverging colour scale centred on 0.
 
     False when matplotlib is missing.
     """
@@ -96,12 +97,20 @@ def heat_map(path: Path, x_name: str, x: Sequence[float], y_name: str, y: Sequen
         return False
     fig, ax = plt.subplots(figsize=(6.5, 5))
     xs, ys = np.asarray(x, float), np.asarray(y, float)
-    im = ax.pcolormesh(xs, ys, np.asarray(value, float), shading="nearest", cmap="viridis")
+    v = np.asarray(value, float)
+    finite = v[np.isfinite(v)]
+    norm = None
+    if len(finite) and finite.min() < 0 < finite.max():     # a diverging scale with 0 at its centre
+        # lazy: part of matplotlib, imported with it (module doc)
+        from matplotlib.colors import TwoSlopeNorm
+
+        norm = TwoSlopeNorm(vmin=float(finite.min()), vcenter=0.0, vmax=float(finite.max()))
+    im = ax.pcolormesh(xs, ys, v, shading="nearest", cmap="coolwarm" if norm else "viridis", norm=norm)
     fig.colorbar(im, ax=ax, label=title)
     yy, xx = np.nonzero(np.asarray(unstable, bool))
     if len(xx):
-        ax.scatter(xs[xx], ys[yy], marker="x", color="red", s=30, label="unstable")
-        ax.legend(loc="upper right", fontsize=7)
+        ax.scatter(xs[xx], ys[yy], marker="x", color="black", s=30, label="unstable")
+        ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), fontsize=7, frameon=False)
     ax.set_xlabel(x_name)
     ax.set_ylabel(y_name)
     fig.tight_layout()

@@ -2,7 +2,7 @@
 
 Writes ``DIR/sweep.csv`` (and ``DIR/sweep.parquet`` when pyarrow is
 installed) with one row per grid point, and for two parameters a heat map
-``DIR/heat-map.png`` of the slowest decay (dB/s) with unstable points
+``DIR/heat-map.png`` of the slowest mode's growth (dB/s, negative: decays) with unstable points
 crossed (when matplotlib is installed).  Values outside a parameter's
 declared range need ``--beyond-range`` (see host/batch/sweep.py).
 """
@@ -102,7 +102,7 @@ def _run(args: argparse.Namespace) -> int:
         decay = np.array([np.nan if r["decay_db_per_s"] is None else r["decay_db_per_s"] for r in rows]).reshape(shape)
         bad = np.array([r["stable"] is False for r in rows]).reshape(shape)
         if heat_map(out / HEAT_MAP_NAME, ax.name, ax.values, ay.name, ay.values, decay.T, bad.T,
-                    "slowest decay, dB/s (20 log10 of the spectral radius x rate)"):
+                    "slowest mode: growth, dB/s (> 0 grows)"):
             wrote.append(out / HEAT_MAP_NAME)
         else:
             print("heat map skipped: matplotlib is not installed (pip install 'sheafsynth[plot]')", file=sys.stderr)
