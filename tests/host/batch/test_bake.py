@@ -20,8 +20,9 @@ import pyloudnorm
 import pytest
 import soundfile as sf
 
+from sheafsynth.engine.analysis.report import guard
 from sheafsynth.engine.preset.load import factory_presets, load_preset
-from sheafsynth.host import cli
+from sheafsynth.host import bank, cli
 from sheafsynth.host.commands import bake as bake_command
 from sheafsynth.host.batch.bakeset import MAP_NAME, samples_sha256, validate_map
 from sheafsynth.host.batch.takes import Take, TakeSettings, render_take
@@ -211,6 +212,10 @@ def test_a_write_failing_part_way_leaves_no_partial_take(tmp_path):
     """A file-size limit (RLIMIT_FSIZE, with SIGXFSZ ignored so writes fail with EFBIG) stands in for a
     full disk: the first take cannot be written whole."""
     out = tmp_path / "set"
+    # the kernel and the stability verdict are built here first, so the limit hits only the take's write
+    preset = bank.load(PRESET)          # as the command loads it
+    guard(preset, rate=48000.0)
+    render_take(preset, Take(60, 100, 0), TakeSettings(48000, 0.1, 0.05, None, 0))
 
     def limit():
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
