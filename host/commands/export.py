@@ -3,8 +3,8 @@
 ``export PRESET --lv2 DIR`` writes ``DIR/<name>.lv2/`` (manifest.ttl, the
 plugin's .ttl, the .so) through engine.backends.lv2.bundle, with one kernel
 per sample rate (Hz, ``--rates``; default every rate the bundle supports).
-Each rate's kernel is checked by the stability guard first (refused unless
-``--allow-unstable``) and lowered with the ramp limits (s) its certificate
+Each rate's kernel is checked by the stability guard first (at most
+``--time-limit`` s a rate; refused unless ``--allow-unstable``) and lowered with the ramp limits (s) its certificate
 asks for, so knob moves in a plugin host stay inside the proof.  The limiter
 is always on in the plugin.
 """
@@ -12,8 +12,10 @@ is always on in the plugin.
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 
+from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S
 from sheafsynth.engine.analysis.report import ramp_limits
 from sheafsynth.engine.backends.lv2.bundle import DEFAULT_RATES, LV2_MAX_BLOCK, LV2_RATES, build_bundle
 from sheafsynth.engine.errors import InputError
@@ -37,6 +39,8 @@ def _add(p: argparse.ArgumentParser) -> None:
                    help="set a parameter's default value (repeatable)")
     p.add_argument("--allow-unstable", action="store_true",
                    help="export even if the preset fails the stability check (the limiter stays on)")
+    p.add_argument("--time-limit", type=float, default=GUARD_TIME_LIMIT_S, metavar="S",
+                   help=f"seconds the stability check may take at each rate (default {GUARD_TIME_LIMIT_S:g})")
 
 
 def parse_rates(text: str | None) -> tuple[int, ...]:
@@ -59,11 +63,15 @@ def parse_rates(text: str | None) -> tuple[int, ...]:
 def _run(args: argparse.Namespace) -> int:
     preset = load_preset_arg(args.preset, args.set)
     rates = parse_rates(args.rates)
+    limit = float(args.time_limit)
+    if not (math.isfinite(limit) and limit > 0):
+        raise InputError(f"--time-limit {args.time_limit:g}: expected a positive number of seconds")
     programs: dict[int, StepProgram] = {}
     for rate in rates:
-        for line in run_guard(preset, float(rate), bool(args.allow_unstable)):
+        for line in run_guard(preset, float(rate), bool(args.allow_unstable), time_limit_s=limit):
             print(f"warning: {rate} Hz: {line}", file=sys.stderr)
-        programs[rate] = lower(preset, float(rate), LV2_MAX_BLOCK, None, ramp_limits(preset, float(rate)))
+        programs[rate] = lower(preset, float(rate), LV2_MAX_BLOCK, None,
+                               ramp_limits(preset, float(rate), time_limit_s=limit))
     bend = next((c.range_semitones for c in preset.controls if c.source == "pitchbend"), DEFAULT_BEND_RANGE)
     bundle = build_bundle(programs, preset.name, args.lv2, bend_range=float(bend))
     print(f"wrote {bundle.path} ({bundle.uri}; {len(bundle.ports)} control port(s); rates "

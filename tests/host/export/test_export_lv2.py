@@ -44,7 +44,10 @@ def exported(tmp_path_factory):
     if host is None:
         pytest.skip("lilv development files (liblilv-dev, pkg-config) are not installed; .ci/run installs them")
     path = _preset_path()
-    rc = main(["export", str(path), "--lv2", str(root / "bundles"), "--rates", ",".join(map(str, RATES))])
+    # --allow-unstable: the guard is bounded in time, so on a loaded machine it may not decide; its
+    # refusals are tested in test_export_errors.py on a preset it decides at once.
+    rc = main(["export", str(path), "--lv2", str(root / "bundles"), "--rates", ",".join(map(str, RATES)),
+               "--allow-unstable"])
     assert rc == 0
     preset = load_checked(path)
     s = slug(preset.name)
@@ -162,7 +165,9 @@ def test_lv2info_lists_the_plugin_and_its_ports(exported):
                           env=dict(os.environ, LV2_PATH=str(bundles)))
     assert proc.returncode == 0, proc.stderr
     text = proc.stdout
-    assert uri in text and "urid#map" in text and "state#interface" in text
+    assert uri in text and "state#interface" in text
+    required = re.search(r"Required Features:\s+(.*?)\n\s*Optional", text, re.S).group(1).split()
+    assert required == ["http://lv2plug.in/ns/ext/urid#map"]          # the only one (LV2 urid extension URI)
     ports = re.split(r"\n\s*Port \d+:\n", text)[1:]
     by_symbol = {re.search(r"Symbol:\s+(\S+)", p).group(1): p for p in ports}
     assert set(by_symbol) == {"midi_in", "out", *names}
