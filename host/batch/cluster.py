@@ -13,18 +13,22 @@ it takes about a second to import and only the batch commands need it.
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import os
+import socket
 import sys
+import time
 from contextlib import contextmanager
 from typing import Any, Callable, Iterator, Sequence
 
 from sheafsynth.engine.errors import InputError, SheafsynthError
 
-__all__ = ["CONNECT_TIMEOUT_S", "TASK_RETRIES", "BatchError", "machine_workers", "open_cluster", "run_tasks"]
+__all__ = ["CONNECT_TIMEOUT_S", "TASK_RETRIES", "BatchError", "machine_workers", "probe_scheduler", "open_cluster",
+           "run_tasks"]
 
 #: How long (s) to wait for a scheduler given with --scheduler before giving up.
-CONNECT_TIMEOUT_S = 5.0
+CONNECT_TIMEOUT_S = 4.0
 #: How often a task that raised is tried again (a lost worker's tasks are rerun by the scheduler anyway).
 TASK_RETRIES = 2
 
@@ -41,6 +45,50 @@ def machine_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def _first_line(e: BaseException) -> str:
+    return str(e).splitlines()[0] if str(e) else type(e).__name__
+
+
+def probe_scheduler(scheduler: str, timeout_s: float = CONNECT_TIMEOUT_S) -> None:
+    """Reach ``scheduler`` within about ``timeout_s`` s: a plain TCP connection first (a refused one fails at
+    once), then one dask connection with its handshake; InputError naming why not.  (A Client whose
+    constructor fails spends another 10 s closing itself and prints a traceback, so the address is tried
+    this way first.)"""
+    # lazy: dask.distributed is heavy to import (module doc)
+    from distributed.comm import connect
+    from distributed.comm.addressing import parse_address, parse_host_port
+
+    def fail(why: str) -> InputError:
+        return InputError(f"--scheduler {scheduler}: no dask scheduler answered within {timeout_s:g} s ({why})")
+
+    start = time.monotonic()
+    try:
+        scheme, loc = parse_address(scheduler)
+        if scheme in ("tcp", "tls"):
+            host, port = parse_host_port(loc)
+            socket.create_connection((host, int(port)), timeout=timeout_s).close()
+    except (ValueError, TypeError) as e:
+        raise InputError(f"--scheduler {scheduler}: not an address such as tcp://host:8786 "
+                         f"({_first_line(e)})") from None
+    except OSError as e:
+        raise fail("timed out" if isinstance(e, TimeoutError) else (e.strerror or _first_line(e))) from None
+
+    left = max(0.5, timeout_s - (time.monotonic() - start))     # one time budget for both steps
+
+    async def once() -> None:
+        comm = await connect(scheduler, timeout=left)
+        await comm.close()
+
+    try:
+        asyncio.run(asyncio.wait_for(once(), left))
+    except (TimeoutError, asyncio.TimeoutError):
+        raise fail("timed out") from None
+    except OSError as e:
+        raise fail(_first_line(e)) from None
+    except Exception:  # anything else from the far end: whatever listens there is not a dask scheduler
+        raise fail("what answered there is not a dask scheduler") from None
+
+
 @contextmanager
 def open_cluster(workers: int | None = None, scheduler: str | None = None,
                  connect_timeout_s: float = CONNECT_TIMEOUT_S) -> Iterator[Any]:
@@ -53,12 +101,12 @@ def open_cluster(workers: int | None = None, scheduler: str | None = None,
     from distributed import Client, LocalCluster
 
     if scheduler is not None:
+        probe_scheduler(scheduler, connect_timeout_s)
         try:
             client = Client(scheduler, timeout=connect_timeout_s, set_as_default=False)
         except (OSError, TimeoutError, ValueError, TypeError) as e:
-            why = str(e).splitlines()[0] if str(e) else type(e).__name__
             raise InputError(f"--scheduler {scheduler}: no dask scheduler answered within "
-                             f"{connect_timeout_s:g} s ({why})") from None
+                             f"{connect_timeout_s:g} s ({_first_line(e)})") from None
         try:
             yield client
         finally:

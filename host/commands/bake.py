@@ -17,7 +17,7 @@ import soundfile as sf
 
 from sheafsynth.engine.errors import InputError
 from sheafsynth.host.batch.bakeset import MAP_NAME, bake_set, check_folder, parse_notes, parse_velocities, plan_takes
-from sheafsynth.host.batch.cluster import open_cluster
+from sheafsynth.host.batch.cluster import open_cluster, probe_scheduler
 from sheafsynth.host.batch.pictures import contact_sheet
 from sheafsynth.host.batch.takes import TakeSettings
 from sheafsynth.host.commands.shared import Command, load_preset_arg, warn_if_unstable
@@ -75,6 +75,8 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError(f"--workers {args.workers}: expected 1 to 512 worker processes")
     out = Path(args.out)
     check_folder(out)
+    if args.scheduler is not None:      # a scheduler nobody answers at is named before any other work
+        probe_scheduler(args.scheduler)
     warn_if_unstable(args, preset)
     result = bake_set(lambda: open_cluster(args.workers, args.scheduler), preset, takes, settings, out,
                       subtype="FLOAT" if args.float else "PCM_24")

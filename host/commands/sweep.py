@@ -18,7 +18,7 @@ import numpy as np
 
 from sheafsynth.engine.analysis.deadline import CHECK_TIME_LIMIT_S
 from sheafsynth.engine.errors import InputError
-from sheafsynth.host.batch.cluster import open_cluster
+from sheafsynth.host.batch.cluster import open_cluster, probe_scheduler
 from sheafsynth.host.batch.pictures import heat_map
 from sheafsynth.host.batch.sweep import outside_range, parse_axis, sweep, write_csv, write_parquet
 from sheafsynth.host.commands.shared import Command, load_preset_arg
@@ -82,6 +82,8 @@ def _run(args: argparse.Namespace) -> int:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as e:
         raise InputError(f"--out {out}: cannot write there ({e.strerror or e})") from None
+    if args.scheduler is not None:
+        probe_scheduler(args.scheduler)
     with open_cluster(args.workers, args.scheduler) as client:
         rows = sweep(client, preset, axes, notes, float(args.rate), stability_only=args.stability_only,
                      time_limit_s=args.time_limit)

@@ -12,6 +12,7 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -151,7 +152,9 @@ def test_intact_rerun_starts_no_cluster_and_says_when_matplotlib_is_missing(bake
     assert _bake(folder, "--workers", "2") == 0
     cap = capsys.readouterr()
     assert f"0 rendered, {N_TAKES} unchanged" in cap.out
-    assert cap.err.strip() == "contact sheet skipped: matplotlib is not installed (pip install 'sheafsynth[plot]')"
+    lines = cap.err.strip().splitlines()
+    assert lines[-1] == "contact sheet skipped: matplotlib is not installed (pip install 'sheafsynth[plot]')"
+    assert all(ln.startswith("checking the stability of") for ln in lines[:-1])     # the guard's progress line
     assert not (folder / "contact-sheet.png").exists()
 
 
@@ -198,6 +201,38 @@ def test_unreachable_scheduler_is_a_clear_error_within_10_s(tmp_path, capsys):
     err = capsys.readouterr().err
     assert rc == 2 and "no dask scheduler answered" in err and len(err.strip().splitlines()) == 1
     assert elapsed < 10.0      # the bound on the wait, not a speed goal
+
+
+def test_a_listener_that_is_not_a_scheduler_is_a_clear_error(tmp_path, capsys):
+    with socket.socket() as srv:
+        srv.bind(("127.0.0.1", 0))
+        srv.listen()
+
+        def answer():          # whatever connects gets a line of text that is not dask's protocol
+            for _ in range(4):
+                try:
+                    conn, _ = srv.accept()
+                except OSError:
+                    return
+                with conn:
+                    conn.sendall(b"HTTP/1.0 200 OK\r\n\r\nhello\r\n")
+
+        t = threading.Thread(target=answer, daemon=True)
+        t.start()
+        port = srv.getsockname()[1]
+        rc = cli.main(["bake", PRESET, "--out", str(tmp_path), "--notes", "60", "--seconds-max", "1",
+                       "--scheduler", f"tcp://127.0.0.1:{port}"])
+    err = capsys.readouterr().err
+    assert rc == 2 and f"--scheduler tcp://127.0.0.1:{port}: no dask scheduler answered" in err
+    assert len(err.strip().splitlines()) == 1
+    assert not list(tmp_path.glob("*.wav"))
+
+
+def test_scheduler_address_that_is_not_an_address(tmp_path, capsys):
+    rc = cli.main(["bake", PRESET, "--out", str(tmp_path), "--notes", "60", "--seconds-max", "1",
+                   "--scheduler", "nonsense"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "--scheduler nonsense: not an address such as tcp://host:8786" in err
 
 
 def test_unwritable_folder_is_refused_before_any_work(tmp_path, capsys):
