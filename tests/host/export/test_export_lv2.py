@@ -178,3 +178,15 @@ def test_lv2info_lists_the_plugin_and_its_ports(exported):
         for word, want in (("Minimum", spec.lo), ("Maximum", spec.hi), ("Default", spec.value)):
             got = float(re.search(word + r":\s+(\S+)", block).group(1))
             assert got == pytest.approx(want, rel=1e-5, abs=1e-6)
+
+
+def test_the_shared_object_exports_only_the_lv2_entry_point(exported):
+    """Kernels of many bundles share a host process: their symbols must stay inside each .so."""
+    bundles, preset, uri, names, host = exported
+    if shutil.which("nm") is None:
+        pytest.skip("binutils nm is not installed")
+    so = next(bundles.glob("*.lv2/*.so"))
+    proc = subprocess.run(["nm", "-D", "--defined-only", str(so)], capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0, proc.stderr
+    exported_names = {ln.split()[-1] for ln in proc.stdout.splitlines() if ln.strip()}
+    assert exported_names == {"lv2_descriptor"}              # LV2 core: the one symbol a host looks up
