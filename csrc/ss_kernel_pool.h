@@ -4,7 +4,8 @@
  * Included at the end of every generated kernel, after the generated code
  * has defined (all static, all prefixed):
  *   SSK_POLY, SSK_NPARAM, SSK_NCOEF, SSK_MAXB, SSK_RATE, SSK_FADE,
- *   SSK_EXC_IMPULSE, SSK_EXC_LEN (0 = one period), SSK_EXC_BRIGHT, SSK_EXC_GAIN,
+ *   SSK_EXC_IMPULSE, SSK_EXC_LEN (0 = one period), SSK_EXC_BRIGHT, SSK_EXC_BRIGHT_EXP
+ *   (the brightness pole is 0.9 (1 - vel/127) at 48 kHz, raised to 48000/rate), SSK_EXC_GAIN,
  *   SSK_GUARD, SSK_SIL_RELEASED, SSK_SIL_HELD, SSK_HELD_QUIET, SSK_MAX_BEND,
  *   SSK_LIM_CEIL, SSK_LIM_REL_S,
  *   ssk_param_lo[], ssk_param_hi[], ssk_param_def[], ssk_param_ramp[] (samples),
@@ -58,7 +59,13 @@ static void ssk_start(ssk_state *S, ssk_voice *v, int note, int vel) {
             if (len < 1) len = 1;
         }
         v->exc_left = len;
-        v->exc_pole = SSK_EXC_BRIGHT ? (float)(0.9 * (1.0 - (double)vel / 127.0)) : 0.0f;
+        if (SSK_EXC_BRIGHT) {
+            double q = 0.9 * (1.0 - (double)vel / 127.0);     /* the pole at 48 kHz */
+            if (SSK_EXC_BRIGHT_EXP != 1.0 && q > 0.0) q = pow(q, SSK_EXC_BRIGHT_EXP);
+            v->exc_pole = (float)q;
+        } else {
+            v->exc_pole = 0.0f;
+        }
     }
 }
 

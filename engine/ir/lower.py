@@ -18,6 +18,7 @@ from sheafsynth.engine.ir.fields import finish_fields, lower_field
 from sheafsynth.engine.ir.program import (KIND_DELAY, KIND_FIELD, KIND_LINEAR, MAX_BEND_SEMITONES, Block,
                                           LoopStep, ParamInfo, StepProgram, Term, TuningLoop, note_hz)
 from sheafsynth.engine.model.cells import CellModel
+from sheafsynth.engine.model.timebase import Timebase, excitation_at
 from sheafsynth.engine.model.sheaf import EXCITE, OUT, NetworkSheaf, Wire, evaluation_order, sheaf_of
 from sheafsynth.engine.preset.affine import Affine, AffineMatrix
 
@@ -27,13 +28,18 @@ def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int |
           min_ramp_s: dict[str, float] | None = None) -> StepProgram:
     """Lower a validated preset to its step program at ``rate`` Hz.
 
+    The preset's physical and design-rate quantities become per-sample
+    numbers for ``rate`` in the model layer (``sheaf_of(preset, rate)``,
+    engine.model.timebase), so every consumer of the step program sees the
+    same instrument at every rate.
+
     ``min_ramp_s`` lengthens parameter ramps (seconds per change) where a
     ramp-limited stability certificate needs it (engine.analysis.report.ramp_limits).
     """
     if rate not in (22050.0, 32000.0, 44100.0, 48000.0, 88200.0, 96000.0, 192000.0):
         if not (8000.0 <= rate <= 192000.0):
             raise PresetError(f"sample rate {rate:g} Hz is outside 8000..192000", "rate")
-    sheaf: NetworkSheaf = sheaf_of(preset)
+    sheaf: NetworkSheaf = sheaf_of(preset, float(rate))
     min_ramp_s = min_ramp_s or {}
     params = [ParamInfo(p.name, i, p.value, p.lo, p.hi, p.unit, max(p.ramp_ms / 1000.0, min_ramp_s.get(p.name, 0.0)))
               for i, p in enumerate(preset.parameters.values())]
@@ -69,7 +75,8 @@ def lower(preset, rate: float = 48000.0, max_block: int = 1024, polyphony: int |
         name=preset.name, rate=float(rate), polyphony=int(polyphony or preset.polyphony),
         max_block=int(max_block), notes=preset.notes, params=params, blocks=blocks,
         order=evaluation_order(sheaf), out_terms=out_terms, n_signals=n_sig, loops=loops,
-        excitation=dict(preset.excitation), release_decay=preset.release_decay,
+        excitation=excitation_at(preset.excitation, Timebase(float(rate), preset.design_rate)),
+        release_decay=preset.release_decay,
     )
     for b in blocks:
         if b.is_delay:

@@ -28,7 +28,7 @@ _CHECKED: "weakref.WeakValueDictionary[int, Preset]" = weakref.WeakValueDictiona
 
 
 def check_preset(preset: Preset) -> Preset:
-    """Build the network sheaf of ``preset`` and lower it at 48 kHz; returns ``preset``.
+    """Build the network sheaf of ``preset`` and lower it at its design rate; returns ``preset``.
 
     Raises PresetError (JSON path first) on the first problem.  A preset
     object that passed once is not checked again.
@@ -36,7 +36,7 @@ def check_preset(preset: Preset) -> Preset:
     if _CHECKED.get(id(preset)) is preset:
         return preset
     sheaf_of(preset)    # cells and wires make a network
-    lower(preset)       # the network lowers (tuning loops, fields)
+    lower(preset, preset.design_rate)       # the network lowers (tuning loops, fields)
     _CHECKED[id(preset)] = preset
     return preset
 

@@ -21,7 +21,9 @@ from typing import Any
 from sheafsynth.engine.preset.affine import AffineMatrix, parse_entry, parse_matrix
 from sheafsynth.engine.preset.spec import Preset
 from sheafsynth.engine.model.cells import CellModel, build_cell
-from sheafsynth.engine.model.cells.field import attach_ports, field_maps, field_symbols
+from sheafsynth.engine.model.cells.field import attach_ports, field_maps, field_symbols, input_scale
+from sheafsynth.engine.model.rate_maps import excitation_band
+from sheafsynth.engine.model.timebase import Timebase
 from sheafsynth.engine.errors import PresetError
 
 __all__ = ["EXCITE", "OUT", "Wire", "NetworkSheaf", "build_sheaf", "sheaf_of", "delay_free_loop",
@@ -159,27 +161,34 @@ def _parse_end(raw: str, path: str, index: dict[str, int], cells: list[CellModel
     return ci, None, n
 
 
-_SHEAVES: dict[int, tuple[weakref.ref, NetworkSheaf]] = {}
+_SHEAVES: dict[tuple[int, float], tuple[weakref.ref, NetworkSheaf]] = {}
 
 
-def sheaf_of(preset: Preset) -> NetworkSheaf:
-    """The network sheaf of ``preset``, built once per preset object and kept while it lives.
+def sheaf_of(preset: Preset, rate: float | None = None) -> NetworkSheaf:
+    """The network sheaf of ``preset`` at ``rate`` Hz (default: its design rate).
 
+    Built once per preset object and rate and kept while the preset lives.
     Raises PresetError (with the JSON path) when the cells or wires are
-    malformed; a failed build is not cached.  Not for the audio thread.
+    malformed or a quantity cannot be carried to ``rate``; a failed build
+    is not cached.  Not for the audio thread.
     """
-    key = id(preset)
+    fs = float(preset.design_rate if rate is None else rate)
+    key = (id(preset), fs)
     hit = _SHEAVES.get(key)
     if hit is not None and hit[0]() is preset:
         return hit[1]
-    sheaf = build_sheaf(preset)
+    sheaf = build_sheaf(preset, Timebase(fs, preset.design_rate))
     _SHEAVES[key] = (weakref.ref(preset), sheaf)
     weakref.finalize(preset, _SHEAVES.pop, key, None)
     return sheaf
 
 
-def build_sheaf(preset: Preset) -> NetworkSheaf:
-    """Build and validate a new network sheaf of a parsed preset (``sheaf_of`` caches it)."""
+def _scaled(m: AffineMatrix, k: float) -> AffineMatrix:
+    return AffineMatrix(m.rows, m.cols, tuple(tuple(e.scaled(k) for e in row) for row in m.entries))
+
+
+def build_sheaf(preset: Preset, tb: Timebase) -> NetworkSheaf:
+    """Build and validate a new network sheaf of a parsed preset at ``tb`` (``sheaf_of`` caches it)."""
     raw = preset.raw
     params = preset.parameters
     cells: list[CellModel] = []
@@ -189,7 +198,7 @@ def build_sheaf(preset: Preset) -> NetworkSheaf:
         cid = spec["id"]
         if cid in index:
             raise PresetError(f'cell id "{cid}" is used twice (first at cells[{index[cid]}])', path + ".id")
-        cell = build_cell(spec, path, params)
+        cell = build_cell(spec, path, params, tb)
         index[cid] = len(cells)
         cells.append(cell)
     wires: list[Wire] = []
@@ -218,10 +227,36 @@ def build_sheaf(preset: Preset) -> NetworkSheaf:
                     f'stalk mismatch: {w["from"]} has dimension {sdim} but {w["to"]} has '
                     f'dimension {ddim}; give a {ddim}x{sdim} gain matrix or pick ports', path)
             gain = AffineMatrix.identity(sdim, g)
+        if dst >= 0 and cells[dst].kind == "field" and not tb.native:
+            gain = _scaled(gain, input_scale(cells[dst].extra["field"].dynamics, tb))
         wires.append(Wire(i, src, sp, dst, dp, gain, w.get("at")))
+    if tb.ratio > 1.0:
+        _band_limit_excitation(cells, wires, tb)
     sheaf = NetworkSheaf(cells, wires, index)
     _check_wiring(sheaf)
     return sheaf
+
+
+EXCITATION_BAND_CELL = "excite~band"   # the cell the model adds above the design rate (not a JSON id)
+
+
+def _band_limit_excitation(cells: list[CellModel], wires: list[Wire], tb: Timebase) -> None:
+    """Route the excitation through a lowpass at 0.45 fs0 (rate_maps.excitation_band), above the design rate only.
+
+    Filters written per sample at the design rate fs0 repeat their response
+    above fs0/2 when they run faster (a two-tap average at 96 kHz passes 48
+    kHz again); nothing in the design says what should ring there, so the
+    excitation is kept out of that band and every loop rings as designed.
+    """
+    band = len(cells)
+    a, b, c, d = excitation_band(tb.design_rate, tb.rate)
+    cells.append(CellModel(EXCITATION_BAND_CELL, "statespace", 1, 1, AffineMatrix.from_numbers(a.tolist()),
+                           AffineMatrix.from_numbers(b.tolist()), AffineMatrix.from_numbers(c.tolist()),
+                           AffineMatrix.from_numbers(d.tolist())))
+    for k, w in enumerate(wires):
+        if w.src == EXCITE:
+            wires[k] = Wire(w.index, band, None, w.dst, w.dst_port, w.gain, w.at)
+    wires.append(Wire(-1, EXCITE, None, band, None, AffineMatrix.identity(1)))
 
 
 def _check_wiring(sheaf: NetworkSheaf) -> None:

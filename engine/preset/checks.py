@@ -3,7 +3,8 @@
 :func:`check_values` refuses what no preset needs (deep nesting, huge
 documents, numbers a 32-bit float cannot hold) before anything recursive
 walks the document; :func:`schema_error` checks the shipped JSON Schema
-(``engine/preset/schema/preset-v1.json``).  Every error names the JSON path
+(``engine/preset/schema/preset-v2.json``; version 1 files are migrated first and
+kept as ``preset-v1.json`` for reference).  Every error names the JSON path
 at fault, formatted by :func:`json_path`.
 """
 
@@ -19,7 +20,7 @@ from sheafsynth.engine.errors import PresetError
 __all__ = ["SCHEMA_PATH", "MAX_DEPTH", "MAX_VALUES", "FLOAT32_MAX",
            "json_path", "check_values", "schema_error"]
 
-SCHEMA_PATH = Path(__file__).resolve().parent / "schema" / "preset-v1.json"
+SCHEMA_PATH = Path(__file__).resolve().parent / "schema" / "preset-v2.json"   # documents are migrated first
 MAX_DEPTH = 32          # nesting levels; the deepest v1 key sits at about 8
 MAX_VALUES = 200_000    # JSON values (keys' values, list items) in one document
 FLOAT32_MAX = 3.4028234663852886e38

@@ -26,10 +26,10 @@ from typing import Any, Mapping
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.locations import FACTORY_DIR
 from sheafsynth.engine.preset.checks import MAX_DEPTH, check_values, schema_error
-from sheafsynth.engine.preset.spec import (DEFAULT_NOTES, DEFAULT_POLYPHONY, DEFAULT_RAMP_MS, FORMAT, VERSION,
-                                           ControlSpec, ParamSpec, Preset)
+from sheafsynth.engine.preset.spec import (DEFAULT_NOTES, DEFAULT_POLYPHONY, DEFAULT_RAMP_MS, DESIGN_RATE_V1,
+                                           FORMAT, VERSION, ControlSpec, ParamSpec, Preset)
 
-__all__ = ["RESERVED_CC", "read_json", "parse_json_text", "migrate", "parse_preset", "load_preset",
+__all__ = ["RESERVED_CC", "read_json", "parse_json_text", "migrate", "migrate_v1_to_v2", "parse_preset", "load_preset",
            "factory_presets"]
 
 #: MIDI CCs with a fixed meaning (MIDI 1.0 channel mode and RPN messages); no control may bind them.
@@ -69,7 +69,14 @@ def _reject_constant(name: str):
 
 
 def migrate(doc: dict) -> dict:
-    """Bring an older document to the current version; never reinterpret."""
+    """Bring an older document to the current version; never reinterpret.
+
+    Each step is a pure function of the document.  Version 1 -> 2: version
+    1 wrote every time, loss and filter coefficient per sample at 48 kHz;
+    version 2 says so explicitly (``"design_rate": 48000``), so the file
+    means what it always meant at 48 kHz and is carried to other rates by
+    the physical meaning of each value (engine.model.timebase).
+    """
     if doc.get("format") != FORMAT:
         raise PresetError(f'expected "{FORMAT}", got {doc.get("format")!r}', "format")
     v = doc.get("version")
@@ -80,9 +87,22 @@ def migrate(doc: dict) -> dict:
                           "version")
     if v < 1:
         raise PresetError(f"version {v} is not a sheafsynth preset version (first is 1)", "version")
-    # Version 1 is the first format: nothing to migrate yet.  Future
-    # migrations go here as v -> v+1 steps, each a pure function.
+    if v == 1:
+        doc = migrate_v1_to_v2(doc)
     return doc
+
+
+def migrate_v1_to_v2(doc: dict) -> dict:
+    """A version 1 document as version 2: the same keys, the design rate made explicit."""
+    if "design_rate" in doc:
+        raise PresetError('"design_rate" belongs to version 2; a version 1 file was designed at 48000 Hz',
+                          "design_rate")
+    out = {}
+    for key, value in doc.items():
+        out[key] = 2 if key == "version" else value
+        if key == "version":
+            out["design_rate"] = int(DESIGN_RATE_V1)
+    return out
 
 
 def load_preset(source: Any) -> Preset:
@@ -136,6 +156,7 @@ def parse_preset(doc: dict, where: str = "<memory>") -> Preset:
         polyphony=int(doc.get("polyphony", DEFAULT_POLYPHONY)), notes=(int(notes[0]), int(notes[1])),
         parameters=params, controls=controls, excitation=exc,
         release_decay=float(doc.get("release", {}).get("decay", 0.9)), source=where,
+        design_rate=float(doc.get("design_rate", DESIGN_RATE_V1)),
     )
 
 

@@ -16,11 +16,12 @@ from typing import Mapping
 
 from sheafsynth.engine.errors import PresetError
 
-__all__ = ["FORMAT", "VERSION", "DEFAULT_NOTES", "DEFAULT_POLYPHONY", "DEFAULT_RAMP_MS",
+__all__ = ["FORMAT", "VERSION", "DESIGN_RATE_V1", "DEFAULT_NOTES", "DEFAULT_POLYPHONY", "DEFAULT_RAMP_MS",
            "ParamSpec", "ControlSpec", "Preset"]
 
 FORMAT = "sheafsynth-preset"
-VERSION = 1
+VERSION = 2
+DESIGN_RATE_V1 = 48000.0     # Hz: the rate every version 1 file was designed at
 DEFAULT_NOTES = (24, 108)       # MIDI note numbers: lowest and highest playable
 DEFAULT_POLYPHONY = 16          # voices
 DEFAULT_RAMP_MS = 5.0           # ms a parameter takes to reach a new target
@@ -63,7 +64,9 @@ class ControlSpec:
 class Preset:
     """A parsed preset; ``raw`` is the JSON document as loaded (after migration).
 
-    ``release_decay`` is the per-sample decay factor a released voice uses.
+    ``release_decay`` is the amplitude factor per period a released voice
+    uses.  ``design_rate`` (Hz) is the rate the document's per-sample values
+    were written for (engine.model.timebase carries them to other rates).
     """
 
     raw: dict
@@ -76,6 +79,7 @@ class Preset:
     excitation: dict
     release_decay: float
     source: str = "<memory>"
+    design_rate: float = DESIGN_RATE_V1
 
     def with_values(self, values: Mapping[str, float]) -> "Preset":
         """A copy whose parameter defaults are ``values`` (range-checked).

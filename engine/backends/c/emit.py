@@ -220,6 +220,7 @@ def generate(prog: StepProgram) -> str:
     w(f"#define SSK_EXC_LEN {0 if exc_len == 'period' else int(exc_len)}")
     w(f"#define SSK_EXC_BRIGHT {1 if exc.get('velocity_brightness', False) else 0}")
     w(f"#define SSK_EXC_GAIN {dnum(float(exc.get('gain', 1.0)))}")
+    w(f"#define SSK_EXC_BRIGHT_EXP {dnum(float(exc.get('brightness_exponent', 1.0)))}")
     w(f"#define SSK_GUARD {dnum(GUARD_LIMIT)}")
     w(f"#define SSK_SIL_RELEASED {dnum(SILENCE_RELEASED)}")
     w(f"#define SSK_SIL_HELD {dnum(SILENCE_HELD)}")

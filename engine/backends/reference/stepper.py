@@ -133,7 +133,11 @@ class ReferenceStepper:
             if length == "period":
                 length = max(1, int(math.floor(p.rate / note_hz(note + self.bend) + 0.5)))
             v.exc_left = int(length)
-            v.exc_pole = f32(0.9 * (1.0 - vel / 127.0)) if exc.get("velocity_brightness", False) else 0.0
+            q = 0.9 * (1.0 - vel / 127.0)          # the brightness pole at 48 kHz
+            e = float(exc.get("brightness_exponent", 1.0))
+            if e != 1.0 and q > 0.0:
+                q = math.pow(q, e)
+            v.exc_pole = f32(q) if exc.get("velocity_brightness", False) else 0.0
         v.exc_kind = kind
 
     def _release(self, v: _Voice) -> None:

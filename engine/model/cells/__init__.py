@@ -5,6 +5,9 @@ a builder ``build(spec, path, parameters) -> CellModel``.  A new cell kind is
 a new module here plus one line in the table (see DEVELOPERS.md); the JSON
 Schema lists the same kinds and a test checks the two agree.
 
+Builders take the Timebase the network is built for (engine.model.timebase)
+and return per-sample matrices for that rate.
+
 Every linear kind lowers to a small parameter-affine state-space block
 ``s+ = A s + B u``, ``y = C s + D u``; a delay line is kept as a ring buffer
 (a chain of identity restriction maps is a shift, never a dense matrix).
@@ -20,10 +23,11 @@ from sheafsynth.engine.model.cells import delay
 from sheafsynth.engine.model.cells import field
 from sheafsynth.engine.model.cells import filters
 from sheafsynth.engine.model.cells import statespace
+from sheafsynth.engine.model.timebase import Timebase
 
 __all__ = ["CELL_KINDS", "CellBuilder", "CellModel", "DelaySpec", "build_cell"]
 
-CellBuilder = Callable[[dict, str, Mapping], CellModel]
+CellBuilder = Callable[[dict, str, Mapping, Timebase], CellModel]
 
 CELL_KINDS: dict[str, CellBuilder] = {
     "delay": delay.build,
@@ -36,11 +40,16 @@ CELL_KINDS: dict[str, CellBuilder] = {
 }
 
 
-def build_cell(spec: dict, path: str, parameters: Mapping) -> CellModel:
-    """The cell model of one ``cells[i]`` entry, built by its kind's builder (PresetError on an unknown kind)."""
+def build_cell(spec: dict, path: str, parameters: Mapping, tb: Timebase) -> CellModel:
+    """The cell model of one ``cells[i]`` entry at ``tb.rate``, built by its kind's builder.
+
+    PresetError on an unknown kind.  Every builder turns the entry's
+    physical or design-rate quantities into per-sample ones for the
+    timebase (engine.model.timebase).
+    """
     kind = spec.get("kind")
     builder = CELL_KINDS.get(kind) if isinstance(kind, str) else None
     if builder is None:
         known = ", ".join(sorted(CELL_KINDS))
         raise PresetError(f'unknown cell kind "{kind}" (known: {known})', path + ".kind")
-    return builder(spec, path, parameters)
+    return builder(spec, path, parameters, tb)

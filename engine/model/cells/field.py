@@ -28,6 +28,15 @@ JSON shape
      "loss": 0.0001,                # entry: sigma, loss per sample (default 0)
      "hf_loss": 0.0002,             # entry: eta, frequency-dependent loss (default 0)
      "stiffness": 0.2,              # entry: beta (dynamics "stiff" only)
+
+Rates: speed, loss, hf_loss and stiffness written as plain entries are per
+sample at the preset's design rate (engine.model.timebase); at another rate
+losses keep their rate per second, and so do the speed and stiffness of an
+untuned field (its Courant number follows the rate; a tuned field's speed
+is relative).  Physical forms: ``{"per_second": entry}`` for any of them
+(for loss: 1/s, amplitude falls as exp(-x t)), ``{"t60": seconds}`` for
+loss.  Wires into a field are scaled by :func:`input_scale` so a strike
+keeps its force.
      "strike": [0.31, 0.27],        # point: where input port 0 drives the field
      "pickup": [0.62, {"param": "pick", "scale": 0.5, "offset": 0.25}],
      "tune": "pitch",               # optional: the played note sets the time scale
@@ -105,10 +114,11 @@ from sheafsynth.engine.model.cells.field_model import FieldModel, Point, TuneSpe
 from sheafsynth.engine.model.cells.field_stability import check_stability
 from sheafsynth.engine.model.cells.model import CellModel
 from sheafsynth.engine.model.complexes import CellComplex
+from sheafsynth.engine.model.timebase import Timebase
 from sheafsynth.engine.model.field_sheaf import check_consistency, field_sheaf_from_cell
 from sheafsynth.engine.preset.affine import Affine, parse_entry
 
-__all__ = ["DYNAMICS", "KEYS", "PRECISIONS", "DEFAULT_STRIKE", "DEFAULT_PICKUP", "parse_point", "build",
+__all__ = ["DYNAMICS", "KEYS", "PRECISIONS", "DEFAULT_STRIKE", "DEFAULT_PICKUP", "parse_point", "build", "input_scale",
            "attach_ports", "field_symbols", "field_maps"]
 
 DYNAMICS = ("wave", "stiff", "diffusion")
@@ -121,14 +131,6 @@ DEFAULT_PICKUP = {"path": 0.71, "grid": [0.71, 0.62]}
 
 # --------------------------------------------------------------------------
 # parsing
-
-
-def _entry(spec: dict, key: str, path: str, parameters, default: float | None) -> Affine:
-    if key not in spec:
-        if default is None:
-            raise PresetError(f'a field with this dynamics needs "{key}"', path)
-        return Affine.number(default)
-    return parse_entry(spec[key], f"{path}.{key}", parameters)
 
 
 def _range(e: Affine, parameters) -> tuple[float, float]:
@@ -218,8 +220,50 @@ def _parse_tune(raw, path: str) -> TuneSpec | None:
     raise PresetError('tune is "pitch" or {"ratio": r, "cents": c}', path)
 
 
-def build(spec: dict, path: str, parameters: Mapping) -> CellModel:
-    """Build a field cell: parse, check consistency and (untuned) stability."""
+def _rate_entries(spec: dict, path: str, parameters, dynamics: str, tuned: bool,
+                  tb: Timebase) -> tuple[Affine, Affine, Affine, Affine]:
+    """speed, loss, hf_loss, stiffness per sample at ``tb.rate``.
+
+    Per-sample values (design rate) keep their rate per second: loss,
+    hf_loss, and the speed (Courant number, or diffusion number) and
+    stiffness of an untuned field scale by fs0/fs.  A tuned field's speed
+    and stiffness are relative (the played note sets the time scale), so
+    they are used as written.  ``{"per_second": x}`` is x / fs; loss also
+    takes ``{"t60": seconds}``.
+    """
+    def entry(key: str, default: float | None, t60: bool = False, relative: bool = False) -> Affine:
+        if key not in spec:
+            if default is None:
+                raise PresetError(f'a field with this dynamics needs "{key}"', path)
+            return Affine.number(default)
+        if relative:
+            return parse_entry(spec[key], f"{path}.{key}", parameters)
+        return tb.rate_entry(spec[key], f"{path}.{key}", parameters, t60=t60)
+
+    speed = entry("speed", 0.0 if dynamics == "stiff" else None, relative=tuned)
+    loss = entry("loss", 0.0, t60=True)
+    if dynamics == "diffusion" and "hf_loss" in spec:
+        raise PresetError("hf_loss belongs to wave and stiff dynamics", path + ".hf_loss")
+    hf = entry("hf_loss", 0.0)
+    if dynamics != "stiff" and "stiffness" in spec:
+        raise PresetError('stiffness needs "dynamics": "stiff"', path + ".stiffness")
+    stiffness = entry("stiffness", None if dynamics == "stiff" else 0.0, relative=tuned)
+    return speed, loss, hf, stiffness
+
+
+def input_scale(dynamics: str, tb: Timebase) -> float:
+    """Factor on a field's per-sample input so a strike keeps its force at ``tb.rate``.
+
+    A second-order (wave, stiff) step adds dt^2 times the force, a
+    diffusion step dt times it: (fs0/fs)^2 or fs0/fs.  Exactly 1 at the design rate.
+    """
+    if tb.native:
+        return 1.0
+    return 1.0 / tb.ratio if dynamics == "diffusion" else 1.0 / (tb.ratio * tb.ratio)
+
+
+def build(spec: dict, path: str, parameters: Mapping, tb: Timebase) -> CellModel:
+    """Build a field cell at ``tb.rate``: parse, check consistency and (untuned) stability."""
     for key in spec:
         if key not in KEYS:
             raise PresetError(f"unknown key {key!r} in a field cell", f"{path}.{key}")
@@ -231,15 +275,8 @@ def build(spec: dict, path: str, parameters: Mapping) -> CellModel:
     dynamics = spec.get("dynamics", "wave")
     if dynamics not in DYNAMICS:
         raise PresetError(f"must be one of {', '.join(DYNAMICS)}, got {dynamics!r}", path + ".dynamics")
-    speed = _entry(spec, "speed", path, parameters, 0.0 if dynamics == "stiff" else None)
-    loss = _entry(spec, "loss", path, parameters, 0.0)
-    if dynamics == "diffusion" and "hf_loss" in spec:
-        raise PresetError("hf_loss belongs to wave and stiff dynamics", path + ".hf_loss")
-    hf = _entry(spec, "hf_loss", path, parameters, 0.0)
-    if dynamics != "stiff" and "stiffness" in spec:
-        raise PresetError('stiffness needs "dynamics": "stiff"', path + ".stiffness")
-    stiffness = _entry(spec, "stiffness", path, parameters, None if dynamics == "stiff" else 0.0)
     tune = _parse_tune(spec.get("tune"), path + ".tune")
+    speed, loss, hf, stiffness = _rate_entries(spec, path, parameters, dynamics, tune is not None, tb)
     if tune is not None and dynamics == "diffusion":
         raise PresetError("a diffusion field has no pitch to tune", path + ".tune")
     d = sheaf.stalk
