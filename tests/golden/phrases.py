@@ -1,10 +1,16 @@
 """Fixed renders of every factory preset, hashed, to show that a change keeps the sound.
 
+Two sets: the factory presets (``hashes.json``) and copies of the factory
+presets as they were in format version 1 (``v1/``, ``hashes-v1.json``,
+recorded before version 2 existed): a version 1 file migrates on load and
+must still render at 48 kHz sample for sample as it did.
+
 Two takes per preset at 48 kHz with seed 7: one note (the middle of the
 preset's note range, held 1 s, 0.5 s of tail) and a MIDI phrase with pitch
 bend, sustain pedal and a sweep of every mapped controller, rendered through
 the offline MIDI path.  ``python -m tests.golden.phrases --record`` rewrites
-``hashes.json``; do that only for a change that is meant to alter the sound,
+``hashes.json`` (the factory set only: ``hashes-v1.json`` is never
+re-recorded); do that only for a change that is meant to alter the sound,
 and say so in the commit.
 """
 
@@ -22,6 +28,8 @@ import mido
 import numpy as np
 
 HASHES = Path(__file__).with_name("hashes.json")
+HASHES_V1 = Path(__file__).with_name("hashes-v1.json")
+V1_DIR = Path(__file__).with_name("v1")
 RATE = 48000
 SEED = 7
 FRAME = 2048   # samples per RMS fingerprint frame
@@ -69,11 +77,17 @@ def _fingerprint(x: np.ndarray) -> list[float]:
     return [round(float(v), 6) for v in np.sqrt(np.mean(frames ** 2, axis=1))]
 
 
-def render_all() -> dict:
+def v1_presets() -> list[Path]:
+    """The version 1 copies of the factory presets (kept as they were)."""
+    return sorted(V1_DIR.glob("*.json"))
+
+
+def render_all(paths: list[Path] | None = None) -> dict:
+    """Both takes of every preset in ``paths`` (default: the factory presets)."""
     Instrument, factory_presets, load_preset, render_midi, render_note = _imports()
     out: dict = {}
     with tempfile.TemporaryDirectory() as tmp:
-        for path in factory_presets():
+        for path in (factory_presets() if paths is None else paths):
             preset = load_preset(path)
             name = path.stem
             lo, hi = preset.notes
