@@ -16,8 +16,8 @@ import sys
 
 from sheafsynth.engine import __version__
 from sheafsynth.engine.errors import AudioError, BuildError, InputError, PresetError, SheafsynthError
-from sheafsynth.host.commands import (bake, bench, check, demo, export, inspect, jitter, play, ports, presets,
-                                      render, sweep)
+from sheafsynth.host.commands import (bake, bench, check, demo, export, inspect, jitter, migrate, play, ports,
+                                      presets, render, sweep)
 from sheafsynth.host.commands.shared import CAUTION, Command
 
 __all__ = ["COMMANDS", "EXIT_BAD_INPUT", "EXIT_AUDIO", "EXIT_BUILD", "build_parser", "main"]
@@ -29,7 +29,7 @@ EXIT_BAD_INPUT, EXIT_AUDIO, EXIT_BUILD = 2, 3, 4
 # command going missing.
 COMMANDS: tuple[Command, ...] = (
     render.COMMAND, inspect.COMMAND, presets.COMMAND, demo.COMMAND, play.COMMAND, ports.COMMAND,
-    check.COMMAND, bench.COMMAND, jitter.COMMAND, bake.COMMAND, export.COMMAND, sweep.COMMAND,
+    check.COMMAND, migrate.COMMAND, bench.COMMAND, jitter.COMMAND, bake.COMMAND, export.COMMAND, sweep.COMMAND,
 )
 
 

@@ -37,7 +37,7 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.add_argument("--plot", metavar="FILE.png", help="draw poles, partials and T60 bars to a PNG")
     p.add_argument("--set", action="append", metavar="NAME=VALUE", help="check with a parameter changed")
-    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 96000))
+    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 88200, 96000, 192000))
     p.add_argument("--no-cache", action="store_true", help="recompute instead of reusing a stored report")
     p.add_argument("--modes", metavar="N", default=str(LISTED_DEFAULT),
                    help=f"how many partials to list: the lowest and the strongest (1..{MODES_MAX}, "

@@ -20,7 +20,7 @@ __all__ = ["COMMAND", "write_demo_midi"]
 
 def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out-dir", default="sheafsynth-demo", help="folder for the WAV files (default ./sheafsynth-demo)")
-    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 96000))
+    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 88200, 96000, 192000))
     p.add_argument("--seed", type=int, default=0)
 
 

@@ -27,7 +27,7 @@ def _matrix(rows: list[list[str]], indent: str) -> list[str]:
 
 def describe(preset: Preset, rate: float = 48000.0) -> str:
     """The preset's cells, stalks, restriction maps, wires, loops, parameters and controls at ``rate`` Hz, as text."""
-    sheaf = sheaf_of(preset)
+    sheaf = sheaf_of(preset, rate)
     prog = lower(preset, rate)
     L: list[str] = []
     w = L.append

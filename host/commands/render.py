@@ -27,7 +27,7 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("--velocity", type=int, default=100, help="note velocity 1-127 (default 100)")
     p.add_argument("--seconds", type=float, default=2.0, help="length of a single note render (s)")
     p.add_argument("--out", metavar="FILE.wav", help="output WAV file")
-    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 96000), help="sample rate (Hz)")
+    p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 88200, 96000, 192000), help="sample rate (Hz)")
     p.add_argument("--set", action="append", metavar="NAME=VALUE", help="set a parameter (repeatable)")
     p.add_argument("--seed", type=int, default=0, help="noise seed (same seed, same file)")
     p.add_argument("--channel", type=int, default=None, help="MIDI channel 1-16 to take from --midi (default all)")
