@@ -17,6 +17,9 @@
  * most SSL_MAXB frames, and MIDI events reach the kernel at their own frame
  * (sample-accurate).  A changed control port becomes a ramped parameter
  * event at the start of the run (the kernel's certified ramp applies).
+ * The preset's controller bindings (CC, velocity, channel pressure) move
+ * their parameters at the message's frame; whichever moved last, a control
+ * port or a controller, sets the value.
  * The output limiter is always on.  State (LV2 state) saves and restores the
  * parameter values, one atom:Float per parameter.
  */
@@ -36,6 +39,7 @@
 #include "ss_lv2_config.h"
 
 #define SSL_EVENT_CAP 512
+#define SSL_PER_MSG (2 + SSL_NBIND)   /* most kernel events one MIDI message can make */
 #define SSL_PORT_MIDI 0
 #define SSL_PORT_OUT 1
 #define SSL_PORT_PARAM0 2
@@ -130,9 +134,32 @@ static void ssl_connect(LV2_Handle h, uint32_t port, void *data) {
 
 static void ssl_activate(LV2_Handle h) { (void)h; }
 
-/* One MIDI message -> at most two kernel events (e[0], e[1]); returns how many were written.
- * The mapping is host/controls.py's, without the preset's CC and velocity bindings. */
-static int ssl_midi(const uint8_t *m, uint32_t size, int32_t offset, ss_event *e) {
+/* The value of binding b at controller position x in [0, 1] (host/controls.py's curves). */
+static float ssl_curve(const ssl_binding *b, double x) {
+    double v = b->curve == 1 ? b->lo * pow(b->hi / b->lo, x) : b->lo + (b->hi - b->lo) * x;
+    return (float)v;
+}
+
+/* Parameter events of every binding of `source` (and `cc`) at position x; returns how many. */
+static int ssl_bound(ssl_plugin *p, int source, int cc, double x, int32_t offset, ss_event *e) {
+    int k, n = 0;
+    for (k = 0; k < SSL_NBIND; ++k) {
+        const ssl_binding *b = &ssl_bindings[k];
+        if (b->source != source || (source == 0 && b->cc != cc)) continue;
+        e[n].offset = offset;
+        e[n].type = SS_EV_PARAM;
+        e[n].a = b->index;
+        e[n].b = 0;
+        e[n].value = ssl_curve(b, x);
+        p->target[b->index] = ssl_clamp(b->index, e[n].value);
+        ++n;
+    }
+    return n;
+}
+
+/* One MIDI message -> at most SSL_PER_MSG kernel events from e[0]; returns how many were written.
+ * The mapping is host/controls.py's (omni; the bend range is fixed: RPN 0 is not followed). */
+static int ssl_midi(ssl_plugin *p, const uint8_t *m, uint32_t size, int32_t offset, ss_event *e) {
     uint8_t st;
     if (size < 1) return 0;
     st = (uint8_t)(m[0] & 0xF0u);
@@ -144,9 +171,15 @@ static int ssl_midi(const uint8_t *m, uint32_t size, int32_t offset, ss_event *e
         int note = m[1] & 0x7F, vel = m[2] & 0x7F;
         e->a = note;
         if (st == 0x90u && vel > 0) {
+            int k;
             if (note < SSL_NOTE_LO || note > SSL_NOTE_HI) return 0;   /* outside the playable range */
-            e->type = SS_EV_NOTE_ON;
-            e->b = vel;
+            k = ssl_bound(p, 1, -1, (double)vel / 127.0, offset, e);   /* velocity bindings first */
+            e[k].offset = offset;
+            e[k].type = SS_EV_NOTE_ON;
+            e[k].a = note;
+            e[k].b = vel;
+            e[k].value = 0.0f;
+            return k + 1;
         } else {
             e->type = SS_EV_NOTE_OFF;
         }
@@ -160,6 +193,7 @@ static int ssl_midi(const uint8_t *m, uint32_t size, int32_t offset, ss_event *e
         e->value = (float)(x * SSL_BEND_RANGE);
         return 1;
     }
+    if (st == 0xD0u && size >= 2) return ssl_bound(p, 2, -1, (double)(m[1] & 0x7F) / 127.0, offset, e);
     if (st == 0xB0u && size >= 3) {
         int cc = m[1] & 0x7F, val = m[2] & 0x7F;
         if (cc == 64) {
@@ -181,6 +215,7 @@ static int ssl_midi(const uint8_t *m, uint32_t size, int32_t offset, ss_event *e
             e->type = SS_EV_ALL_NOTES_OFF;
             return 1;
         }
+        return ssl_bound(p, 0, cc, (double)val / 127.0, offset, e);
     }
     return 0;
 }
@@ -225,13 +260,13 @@ static void ssl_run(LV2_Handle h, uint32_t n_samples) {
             int64_t t = it->time.frames;
             if (t < (int64_t)pos) t = (int64_t)pos;     /* out of order: at once */
             if (t >= (int64_t)(pos + len)) break;
-            if (n > SSL_EVENT_CAP - 2) {
+            if (n > SSL_EVENT_CAP - SSL_PER_MSG) {
                 if (t > (int64_t)pos) len = (uint32_t)(t - (int64_t)pos);   /* render up to it first */
                 else it = NULL;                         /* more than the buffer at one frame: drop */
                 break;
             }
             if (it->body.type == p->urid_midi_event)
-                n += ssl_midi((const uint8_t *)(it + 1), it->body.size, (int32_t)(t - (int64_t)pos),
+                n += ssl_midi(p, (const uint8_t *)(it + 1), it->body.size, (int32_t)(t - (int64_t)pos),
                               &p->events[n]);
             it = lv2_atom_sequence_next(it);
             if (lv2_atom_sequence_is_end(&p->midi_in->body, p->midi_in->atom.size, it)) it = NULL;

@@ -17,15 +17,17 @@ import sys
 
 from sheafsynth.engine.analysis.deadline import GUARD_TIME_LIMIT_S
 from sheafsynth.engine.analysis.report import ramp_limits
-from sheafsynth.engine.backends.lv2.bundle import DEFAULT_RATES, LV2_MAX_BLOCK, LV2_RATES, build_bundle
+from sheafsynth.engine.backends.lv2.bundle import (DEFAULT_RATES, LV2_MAX_BLOCK, LV2_RATES, RESERVED_CCS, MidiBinding,
+                                                  build_bundle)
 from sheafsynth.engine.errors import InputError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.ir.program import StepProgram
+from sheafsynth.engine.preset import Preset
 from sheafsynth.host.commands.shared import CAUTION, Command, load_preset_arg
 from sheafsynth.host.controls import DEFAULT_BEND_RANGE
 from sheafsynth.host.guard import run_guard
 
-__all__ = ["COMMAND", "parse_rates"]
+__all__ = ["COMMAND", "parse_rates", "midi_bindings"]
 
 
 def _add(p: argparse.ArgumentParser) -> None:
@@ -60,6 +62,26 @@ def parse_rates(text: str | None) -> tuple[int, ...]:
     return tuple(sorted(out))
 
 
+def midi_bindings(preset: Preset, index: dict[str, int]) -> tuple[MidiBinding, ...]:
+    """The preset's CC, velocity and pressure bindings for the plugin (ranges as host.controls resolves them).
+
+    A CC the plugin keeps for itself (sustain, notes off, RPN) is left out,
+    as the live host's translator never reaches it either.
+    """
+    out = []
+    for c in preset.controls:
+        if c.source not in ("cc", "velocity", "pressure") or c.parameter is None:
+            continue
+        if c.source == "cc" and (c.cc is None or c.cc in RESERVED_CCS):
+            continue
+        spec = preset.parameters[c.parameter]
+        lo = spec.lo if c.lo is None else c.lo
+        hi = spec.hi if c.hi is None else c.hi
+        out.append(MidiBinding(c.source, -1 if c.cc is None else int(c.cc), index[c.parameter], float(lo),
+                               float(hi), c.curve))
+    return tuple(out)
+
+
 def _run(args: argparse.Namespace) -> int:
     preset = load_preset_arg(args.preset, args.set)
     rates = parse_rates(args.rates)
@@ -73,7 +95,8 @@ def _run(args: argparse.Namespace) -> int:
         programs[rate] = lower(preset, float(rate), LV2_MAX_BLOCK, None,
                                ramp_limits(preset, float(rate), time_limit_s=limit))
     bend = next((c.range_semitones for c in preset.controls if c.source == "pitchbend"), DEFAULT_BEND_RANGE)
-    bundle = build_bundle(programs, preset.name, args.lv2, bend_range=float(bend))
+    bindings = midi_bindings(preset, programs[rates[0]].param_index)
+    bundle = build_bundle(programs, preset.name, args.lv2, bend_range=float(bend), bindings=bindings)
     print(f"wrote {bundle.path} ({bundle.uri}; {len(bundle.ports)} control port(s); rates "
           + ", ".join(str(r) for r in bundle.rates) + " Hz)")
     print(f"copy the folder to ~/.lv2 (or add {bundle.path.parent} to LV2_PATH) for plugin hosts to find it. "

@@ -38,7 +38,7 @@ from sheafsynth.engine.errors import BuildError
 from sheafsynth.engine.ir.program import StepProgram
 from sheafsynth.engine.locations import CSRC_DIR
 
-__all__ = ["LV2_RATES", "DEFAULT_RATES", "LV2_MAX_BLOCK", "KERNEL_ENTRY_POINTS", "Bundle", "build_bundle", "wrapper_source"]
+__all__ = ["LV2_RATES", "DEFAULT_RATES", "MidiBinding", "RESERVED_CCS", "LV2_MAX_BLOCK", "KERNEL_ENTRY_POINTS", "Bundle", "build_bundle", "wrapper_source"]
 
 #: Sample rates (Hz) a bundle may hold a kernel for; instantiate refuses a rate it holds none for.
 LV2_RATES: tuple[int, ...] = (44100, 48000, 88200, 96000, 192000)
@@ -56,6 +56,26 @@ KERNEL_ENTRY_POINTS = ("state_size", "init", "render", "set_limiter", "set_param
 _PORTABLE_FLAGS = tuple(f for f in BASE_FLAGS if not f.startswith("-march=")) + STRICT_FLAGS + (
     "-fvisibility=hidden",)
 _COMPILE_TIMEOUT_S = 600
+
+
+@dataclass(frozen=True)
+class MidiBinding:
+    """A MIDI controller moving one parameter: ``source`` "cc" (number ``cc``), "velocity" or "pressure";
+    the position x in [0, 1] maps to ``lo + (hi - lo) x`` ("linear") or ``lo (hi / lo)^x`` ("exp"),
+    in the parameter's unit."""
+
+    source: str
+    cc: int
+    index: int
+    lo: float
+    hi: float
+    curve: str
+
+
+_SOURCES = {"cc": 0, "velocity": 1, "pressure": 2}
+_CURVES = {"linear": 0, "exp": 1}
+#: Controllers the wrapper keeps for itself (sustain, sound and notes off, reset, RPN, data entry).
+RESERVED_CCS = frozenset({6, 38, 64, 100, 101, 120, 121, 123, 124, 125, 126, 127})
 
 
 @dataclass(frozen=True)
@@ -96,9 +116,27 @@ def _run(argv: list[str], what: str, cwd: Path) -> None:
         raise BuildError(f"C compile of {what} failed (exit {proc.returncode}): {first.strip()}")
 
 
+def _binding_lines(prog: StepProgram, bindings: tuple[MidiBinding, ...]) -> list[str]:
+    """The controller table of ss_lv2_config.h (numbers only), each binding checked."""
+    rows = []
+    for b in bindings:
+        if b.source not in _SOURCES or b.curve not in _CURVES:
+            raise BuildError(f"controller binding {b.source!r}/{b.curve!r} is not one the plugin knows")
+        if b.source == "cc" and not (0 <= int(b.cc) <= 127 and int(b.cc) not in RESERVED_CCS):
+            raise BuildError(f"CC {b.cc} cannot be bound to a parameter in the plugin")
+        if not 0 <= int(b.index) < len(prog.params):
+            raise BuildError(f"controller binding names parameter {b.index}, which does not exist")
+        if b.curve == "exp" and not (b.lo > 0 and b.hi > 0):
+            raise BuildError("an exp controller curve needs a range above zero")
+        rows.append(f"{{{_SOURCES[b.source]}, {int(b.cc) if b.source == 'cc' else -1}, {int(b.index)}, "
+                    f"{dnum(b.lo)}, {dnum(b.hi)}, {_CURVES[b.curve]}}}")
+    return [f"#define SSL_NBIND {len(rows)}",
+            f"static const ssl_binding ssl_bindings[{len(rows)} + 1] = {{{', '.join(rows) or '{0, -1, 0, 0.0, 0.0, 0}'}}};"]
+
+
 def _config_header(prog: StepProgram, rates: tuple[int, ...], uri: str, symbols: list[str],
-                   bend_range: float) -> str:
-    """ss_lv2_config.h: rates, parameter ranges and state keys, bend range, playable notes."""
+                   bend_range: float, bindings: tuple[MidiBinding, ...] = ()) -> str:
+    """ss_lv2_config.h: rates, parameter ranges and state keys, bend range, playable notes, controllers."""
     np_ = len(prog.params)
 
     def arr(name: str, vals: list[float]) -> str:
@@ -124,16 +162,19 @@ def _config_header(prog: StepProgram, rates: tuple[int, ...], uri: str, symbols:
         arr("ssl_param_hi", [p.hi for p in prog.params]),
         arr("ssl_param_def", [p.value for p in prog.params]),
         f"static const char *const ssl_param_key[{np_} + 1] = {{{keys}}};",
+        "typedef struct ssl_binding { int source, cc, index; double lo, hi; int curve; } ssl_binding;",
+        *_binding_lines(prog, bindings),
         "#endif",
         ""])
 
 
 def build_bundle(programs: dict[int, StepProgram], name: str, dest_dir: str | os.PathLike, *,
-                 bend_range: float = 2.0) -> Bundle:
+                 bend_range: float = 2.0, bindings: tuple[MidiBinding, ...] = ()) -> Bundle:
     """Write ``dest_dir/<slug>.lv2/`` for ``programs`` (rate in Hz -> step program of one preset).
 
     ``name`` is the preset's name (only its slug reaches C and TTL);
-    ``bend_range`` is the pitch-bend range in semitones.  Every program must
+    ``bend_range`` is the pitch-bend range in semitones; ``bindings`` are the
+    MIDI controllers that move parameters.  Every program must
     come from the same preset with the same parameters and ``max_block``.
     Raises BuildError with one line naming what failed.
     """
@@ -169,7 +210,8 @@ def build_bundle(programs: dict[int, StepProgram], name: str, dest_dir: str | os
     work = Path(tempfile.mkdtemp(prefix="sheafsynth-lv2-"))
     try:
         cc = _compiler()
-        (work / "ss_lv2_config.h").write_text(_config_header(first, rates, uri, symbols, bend_range), encoding="utf-8")
+        header = _config_header(first, rates, uri, symbols, bend_range, tuple(bindings))
+        (work / "ss_lv2_config.h").write_text(header, encoding="utf-8")
         objects = []
         for r in rates:
             src = work / f"kernel_{r}.c"

@@ -2,13 +2,13 @@
 
 The test host (lv2_test_host.c, beside this file) is compiled with the
 system's lilv (pkg-config lilv-0).  ``expected_audio`` plays the same
-script through ``engine.instrument.Instrument``: MIDI bytes are read by
-the MIDI 1.0 Detailed Specification (note on 0x9n, note off 0x8n, pitch
-bend 0xEn with 14-bit value centred on 8192, control change 0xBn with
-CC 64 the sustain pedal), the kernel blocks are split the way the plugin
-splits a run (at most LV2_MAX_BLOCK frames each), and a changed control
-port is one parameter event at the start of the run, as the plugin's
-documentation states.
+script through ``engine.instrument.Instrument``: MIDI bytes are parsed by
+mido (a reference MIDI library) and turned into kernel events by the live
+host's own translator (host.controls.MidiTranslator: playable range,
+bend, pedals, the preset's controller bindings and curves), the kernel
+blocks are split the way the plugin splits a run (at most LV2_MAX_BLOCK
+frames each), and a changed control port is one parameter event at the
+start of the run, as the plugin's documentation states.
 """
 
 from __future__ import annotations
@@ -18,11 +18,12 @@ import shutil
 import subprocess
 from pathlib import Path
 
+import mido
 import numpy as np
 
 from sheafsynth.engine.backends.lv2.bundle import LV2_MAX_BLOCK
 from sheafsynth.engine.instrument import Instrument
-from sheafsynth.engine.ir import voicing as V
+from sheafsynth.host.controls import MidiTranslator
 
 __all__ = ["HOST_SOURCE", "build_host", "run_host", "expected_audio", "script_text"]
 
@@ -45,7 +46,8 @@ def build_host(dest: Path) -> Path | None:
 def script_text(runs: list[int], midi: list[tuple[int, int, int, int]],
                 ports: list[tuple[int, str, float]]) -> str:
     """The host's script: run lengths (frames), MIDI (frame, 3 bytes), port values (frame, symbol, value)."""
-    lines = [f"midi {t} {a} {b} {c}" for t, a, b, c in midi]
+    # an atom sequence holds its events in time order (LV2 atom: Sequence), so the script does too
+    lines = [f"midi {t} {a} {b} {c}" for t, a, b, c in sorted(midi, key=lambda m: m[0])]
     lines += [f"port {t} {s} {v!r}" for t, s, v in ports]
     lines += [f"run {n}" for n in runs]
     return "\n".join(lines) + "\n"
@@ -65,25 +67,8 @@ def run_host(host: Path, lv2_path: Path, uri: str, rate: int, script: str, work:
     return subprocess.run(argv, capture_output=True, text=True, env=env, timeout=300)
 
 
-def _midi_events(msg: tuple[int, int, int], notes: tuple[int, int], bend_range: float) -> list[tuple]:
-    status, d1, d2 = msg
-    kind = status & 0xF0
-    if kind == 0x90 and d2 > 0:
-        lo, hi = notes
-        return [(V.EV_NOTE_ON, d1, d2, 0.0)] if lo <= d1 <= hi else []   # playable range (host rule)
-    if kind in (0x80, 0x90):
-        return [(V.EV_NOTE_OFF, d1, 0, 0.0)]
-    if kind == 0xE0:
-        v = (d2 << 7 | d1) - 8192
-        # full down = -range, full up = +range: common practice (no source)
-        return [(V.EV_BEND, 0, 0, v / (8191.0 if v > 0 else 8192.0) * bend_range)]
-    if kind == 0xB0 and d1 == 64:
-        return [(V.EV_SUSTAIN, 0, 1 if d2 >= 64 else 0, 0.0)]
-    return []
-
-
 def expected_audio(inst: Instrument, runs: list[int], midi: list[tuple[int, int, int, int]],
-                   ports: list[tuple[int, str, float]], names: dict[str, str], bend_range: float,
+                   ports: list[tuple[int, str, float]], names: dict[str, str],
                    first_values: dict[str, float] | None = None) -> np.ndarray:
     """What the plugin must play: the same script through ``inst`` (see the module doc).
 
@@ -91,6 +76,7 @@ def expected_audio(inst: Instrument, runs: list[int], midi: list[tuple[int, int,
     port values the first run starts from (set without a ramp), None after
     a state restore (the restored values stand).
     """
+    translator = MidiTranslator(inst.preset, inst.program.param_index)
     total = sum(runs)
     out = np.zeros(total, dtype=np.float32)
     last = dict(first_values) if first_values is not None else None
@@ -116,8 +102,9 @@ def expected_audio(inst: Instrument, runs: list[int], midi: list[tuple[int, int,
             m = min(LV2_MAX_BLOCK, pos + n - a)
             for t, s, d1, d2 in midi:
                 if a <= t < a + m:
-                    for typ, x, y, val in _midi_events((s, d1, d2), inst.program.notes, bend_range):
-                        inst.push_event(t - a, typ, x, y, val)
+                    data = [s, d1] if 0xC0 <= s < 0xE0 else [s, d1, d2]    # two-byte messages
+                    for ev in translator.translate(mido.Message.from_bytes(data), t - a):
+                        inst.push_event(*ev)
             inst.process(m, out[a:a + m])
             a += m
         pos += n

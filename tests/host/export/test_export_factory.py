@@ -46,6 +46,6 @@ def test_every_factory_preset_exports_and_plays(tmp_path):
         got = np.fromfile(work / "out.raw", dtype=np.float32)
         inst = Instrument(preset, rate=RATE, max_block=512, min_ramp_s=ramp_limits(preset, float(RATE)))
         first = {n: p.value for n, p in preset.parameters.items()}
-        want = expected_audio(inst, runs, midi, [], {}, 2.0, first)
+        want = expected_audio(inst, runs, midi, [], {}, first)
         assert float(np.max(np.abs(want))) > 1e-4, path.stem
         assert float(np.max(np.abs(got - want))) <= 1e-6, path.stem

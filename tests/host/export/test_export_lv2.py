@@ -22,7 +22,6 @@ from sheafsynth.engine.instrument import Instrument
 from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.preset.load import factory_presets
 from sheafsynth.host.cli import main
-from sheafsynth.host.controls import DEFAULT_BEND_RANGE
 
 from tests.host.export.lv2_support import build_host, expected_audio, run_host, script_text
 
@@ -55,10 +54,6 @@ def exported(tmp_path_factory):
     return root / "bundles", preset, plugin_uri(s), dict(zip(symbols, preset.parameters)), host
 
 
-def _bend_range(preset) -> float:
-    return next((c.range_semitones for c in preset.controls if c.source == "pitchbend"), DEFAULT_BEND_RANGE)
-
-
 def _phrase(preset, names: dict[str, str], rate: int):
     """Notes, a bend, sustain, a knob sweep over runs of odd lengths (some longer than a kernel block)."""
     lo, hi = preset.notes
@@ -76,6 +71,11 @@ def _phrase(preset, names: dict[str, str], rate: int):
             (9000, 0xB0, 64, 0),                           # sustain up
             (9500, 0x90, 127, 100) if hi < 127 else (9500, 0x90, base, 0),   # outside the playable range
             (11000, 0x80, n2, 0), (12000, 0x90, base, 70), (15000, 0x90, base, 0)]
+    # the preset's own controller bindings (read from the loaded preset), swept, and channel pressure
+    for c in preset.controls:
+        if c.source == "cc" and c.cc is not None and c.cc not in (6, 38, 64, 100, 101) and c.cc < 120:
+            midi += [(3000 + 700 * j + c.cc, 0xB0, c.cc, v) for j, v in enumerate((0, 40, 90, 127, 64))]
+    midi.append((6100, 0xD0, 90, 0))
     midi = [(t * k, a, b, c) for t, a, b, c in midi]
     ports = []
     starts = np.cumsum([0] + runs[:-1])
@@ -98,7 +98,7 @@ def _play(exported, rate: int, tmp_path: Path):
     assert proc.returncode == 0, proc.stderr
     got = np.fromfile(tmp_path / "out.raw", dtype=np.float32)
     first = {n: preset.parameters[n].value for n in preset.parameters}
-    want = expected_audio(_instrument(preset, rate), runs, midi, ports, names, _bend_range(preset), first)
+    want = expected_audio(_instrument(preset, rate), runs, midi, ports, names, first)
     return got, want
 
 
@@ -151,7 +151,7 @@ def test_state_round_trip_restores_the_parameter_values(exported, tmp_path):
     assert again and float(again.group(1)) == float(found.group(1))
     inst = _instrument(preset, 48000)
     inst.set_now(names[sym], value)
-    want = expected_audio(inst, runs, midi, [], names, _bend_range(preset), None)
+    want = expected_audio(inst, runs, midi, [], names, None)
     got = np.fromfile(b / "out.raw", dtype=np.float32)
     assert float(np.max(np.abs(want))) > 1e-3
     assert float(np.max(np.abs(got - want))) <= TOL
