@@ -27,6 +27,7 @@ from tests.host.export.lv2_support import build_host, expected_audio, run_host, 
 
 RATES = (44100, 48000, 96000)
 TOL = 1e-6          # the bound on |plugin - Instrument|
+CHECK_S = 300.0     # time the stability check may take (s); a decided answer is stored and reused
 
 
 def _preset_path() -> Path:
@@ -45,8 +46,10 @@ def exported(tmp_path_factory):
     path = _preset_path()
     # --allow-unstable: the guard is bounded in time, so on a loaded machine it may not decide; its
     # refusals are tested in test_export_errors.py on a preset it decides at once.
+    # --time-limit: the ramp limits the export bakes in and those _instrument asks for must both come
+    # from a decided check (an undecided one gives none), whatever the load on the machine.
     rc = main(["export", str(path), "--lv2", str(root / "bundles"), "--rates", ",".join(map(str, RATES)),
-               "--allow-unstable"])
+               "--allow-unstable", "--time-limit", str(CHECK_S)])
     assert rc == 0
     preset = load_checked(path)
     s = slug(preset.name)
@@ -88,7 +91,8 @@ def _phrase(preset, names: dict[str, str], rate: int):
 
 
 def _instrument(preset, rate: int) -> Instrument:
-    return Instrument(preset, rate=rate, max_block=512, min_ramp_s=ramp_limits(preset, float(rate)))
+    return Instrument(preset, rate=rate, max_block=512,
+                      min_ramp_s=ramp_limits(preset, float(rate), time_limit_s=CHECK_S))
 
 
 def _play(exported, rate: int, tmp_path: Path):
