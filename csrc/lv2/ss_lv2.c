@@ -38,8 +38,9 @@
 #include "ss_abi.h"
 #include "ss_lv2_config.h"
 
-#define SSL_EVENT_CAP 512
 #define SSL_PER_MSG (2 + SSL_NBIND)   /* most kernel events one MIDI message can make */
+/* room for every knob's event, then at least 512 MIDI events, per kernel block */
+#define SSL_EVENT_CAP (512 + SSL_NPARAM + SSL_PER_MSG)
 #define SSL_PORT_MIDI 0
 #define SSL_PORT_OUT 1
 #define SSL_PORT_PARAM0 2
