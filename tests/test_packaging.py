@@ -54,7 +54,7 @@ def test_wheel_ships_one_namespace_with_its_data(wheel):
     tops = {n.split("/")[0] for n in names if not n.split("/")[0].endswith((".dist-info", ".data"))}
     assert tops == {"sheafsynth"}, tops
     for needed in ("sheafsynth/csrc/ss_abi.h", "sheafsynth/csrc/host_rt.c", "sheafsynth/presets/porch-pluck.json",
-                   "sheafsynth/engine/preset/schema/preset-v1.json",
+                   "sheafsynth/engine/preset/schema/preset-v1.json", "sheafsynth/engine/preset/schema/preset-v2.json",
                    "sheafsynth/engine/analysis/schema/check-report.json"):
         assert needed in names, f"{needed} is not in the wheel"
     assert "sheafsynth/__init__.py" not in names      # PEP 420 namespace: nothing of ours at the top

@@ -29,7 +29,14 @@ from sheafsynth.engine.errors import PresetError, UnstableError
 from sheafsynth.engine.ir.validate import load_checked
 from sheafsynth.engine.locations import FACTORY_DIR
 
-PER_PRESET = max(1, int(os.environ.get("SHEAFSYNTH_GUARD_FUZZ", "20") or 20))
+def _per_preset() -> int:
+    raw = os.environ.get("SHEAFSYNTH_GUARD_FUZZ", "20") or "20"
+    if not raw.isdigit() or int(raw) < 1:
+        raise pytest.UsageError(f"SHEAFSYNTH_GUARD_FUZZ must be a whole number of variants per preset, got {raw!r}")
+    return int(raw)
+
+
+PER_PRESET = _per_preset()
 FUZZ_LIMIT_S = 1.0        # the deadline handed to the guard
 HANG_BOUND_S = 60.0       # SIGALRM bound on one guard call: a hang guard, not a speed test
 FACTORY = sorted(p.name for p in FACTORY_DIR.glob("*.json"))

@@ -87,7 +87,7 @@ def _del(path):
 # (case id, mutation, expected path prefix, expected words in the message)
 MALFORMED = [
     ("wrong-format", _set(["format"], "other"), "format", "sheafsynth-preset"),
-    ("newer-version", _set(["version"], 2), "version", "newer"),
+    ("newer-version", _set(["version"], 3), "version", "newer"),
     ("zero-version", _set(["version"], 0), "version", "first is 1"),
     ("string-version", _set(["version"], "1"), "version", "integer"),
     ("missing-cells", _del(["cells"]), "(top level)", "cells"),
