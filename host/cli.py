@@ -16,7 +16,7 @@ import sys
 
 from sheafsynth.engine import __version__
 from sheafsynth.engine.errors import AudioError, BuildError, InputError, PresetError, SheafsynthError
-from sheafsynth.host.commands import (bake, bench, check, demo, export, inspect, jitter, migrate, play, ports,
+from sheafsynth.host.commands import (bake, bench, check, demo, export, inspect, jitter, migrate, new, play, ports,
                                       presets, render, sweep)
 from sheafsynth.host.commands.shared import CAUTION, Command
 
@@ -29,7 +29,8 @@ EXIT_BAD_INPUT, EXIT_AUDIO, EXIT_BUILD = 2, 3, 4
 # command going missing.
 COMMANDS: tuple[Command, ...] = (
     render.COMMAND, inspect.COMMAND, presets.COMMAND, demo.COMMAND, play.COMMAND, ports.COMMAND,
-    check.COMMAND, migrate.COMMAND, bench.COMMAND, jitter.COMMAND, bake.COMMAND, export.COMMAND, sweep.COMMAND,
+    check.COMMAND, new.COMMAND, migrate.COMMAND, bench.COMMAND, jitter.COMMAND, bake.COMMAND, export.COMMAND,
+    sweep.COMMAND,
 )
 
 
