@@ -3,17 +3,21 @@
 Lists every cell with its stalk dimensions (inputs, state, outputs; the
 stalk is the augmented state [inputs ; state]), every restriction map with
 its parameter dependence, the wires, the tuning loops, the parameters and
-the controller map.
+the controller map.  ``--plot FILE.png`` (or ``.svg``) also draws the
+network, each field's complex with its strike and pickup, and the field's
+lowest mode shapes (host.pictures.draw; needs the ``plot`` extra).
 """
 
 from __future__ import annotations
 
 import argparse
 
+from sheafsynth.engine.errors import InputError
 from sheafsynth.engine.ir.lower import lower
 from sheafsynth.engine.model.sheaf import sheaf_of
 from sheafsynth.engine.preset import Preset
 from sheafsynth.host.commands.shared import Command, load_preset_arg
+from sheafsynth.host.pictures.draw import draw_instrument
 
 __all__ = ["COMMAND", "describe"]
 
@@ -93,10 +97,19 @@ def describe(preset: Preset, rate: float = 48000.0) -> str:
 def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("preset", metavar="PRESET")
     p.add_argument("--rate", type=int, default=48000)
+    p.add_argument("--plot", metavar="FILE.png", help="also draw the network, each field's complex with strike "
+                   "and pickup, and its lowest mode shapes (.png or .svg)")
 
 
 def _run(args: argparse.Namespace) -> int:
-    print(describe(load_preset_arg(args.preset), float(args.rate)))
+    preset = load_preset_arg(args.preset)
+    print(describe(preset, float(args.rate)))
+    if args.plot:
+        try:
+            written = draw_instrument(preset, args.plot, float(args.rate))
+        except (PermissionError, FileNotFoundError, IsADirectoryError) as e:
+            raise InputError(f"--plot {args.plot}: cannot write ({e.strerror}); nothing was written") from None
+        print(f"picture written to {written}")
     return 0
 
 
