@@ -1,7 +1,11 @@
-"""The check plot: poles against the unit circle, the partial ladder, T60 bars (one PNG).
+"""The check plot: poles against the unit circle, the partial ladder, T60 bars, modal amplitude bars (one PNG).
 
 matplotlib is the optional ``plot`` extra, imported when a plot is drawn.
-Frequencies in Hz, T60 in s (engine.analysis.modes).
+Frequencies in Hz, T60 in s, amplitudes in dB re a unit impulse
+(engine.analysis.modes: the peak of each partial in the impulse response
+from the excitation input to the output).  Amplitude bars start at a floor
+:data:`AMPLITUDE_RANGE_DB` below the loudest partial, so their lengths read
+as dB below it.
 """
 
 from __future__ import annotations
@@ -14,12 +18,31 @@ import numpy as np
 from sheafsynth.engine.analysis.modes import Mode
 from sheafsynth.engine.errors import PlotUnavailable
 
-__all__ = ["plot_report"]
+__all__ = ["AMPLITUDE_RANGE_DB", "amplitude_bars", "plot_report"]
+
+#: dB below the loudest partial where the amplitude bars start.
+AMPLITUDE_RANGE_DB = 60.0
 
 
 def _cents(c: float) -> str:
     v = round(float(c), 1)
     return f"{0.0 if v == 0 else v:+.1f} c"
+
+
+def amplitude_bars(mode_list: Sequence[Mode]) -> tuple[list[str], list[float], float] | None:
+    """(labels, amplitude dB, floor dB) of the amplitude panel, partials ascending in frequency.
+
+    Partials without an amplitude (no input known) or at minus infinity
+    sit at the floor; None when no partial has an amplitude.
+    """
+    srt = sorted(mode_list, key=lambda m: m.freq_hz)
+    known = [float(m.amplitude_db) for m in srt if m.amplitude_db is not None and math.isfinite(m.amplitude_db)]
+    if not known:
+        return None
+    floor = max(known) - AMPLITUDE_RANGE_DB
+    vals = [max(floor, float(m.amplitude_db)) if m.amplitude_db is not None and math.isfinite(m.amplitude_db)
+            else floor for m in srt]
+    return [f"{m.freq_hz:.0f} Hz {m.note_name}" for m in srt], vals, floor
 
 
 def plot_report(
@@ -30,7 +53,7 @@ def plot_report(
     title: str = "",
     spectral_radius: float | None = None,
 ) -> None:
-    """Write one PNG: poles and unit circle, partial ladder, T60 bars.
+    """Write one PNG: poles and unit circle, partial ladder, T60 bars, modal amplitude bars.
 
     matplotlib is imported here (the plot extra); PlotUnavailable if absent.
     """
@@ -44,7 +67,8 @@ def plot_report(
 
     pz = np.asarray(list(poles), dtype=complex)
     ms = list(mode_list)
-    fig, (ax_z, ax_l, ax_t) = plt.subplots(1, 3, figsize=(15, 5.2), gridspec_kw={"width_ratios": [1, 1.1, 1.3]})
+    fig, (ax_z, ax_l, ax_t, ax_a) = plt.subplots(1, 4, figsize=(20, 5.2),
+                                                 gridspec_kw={"width_ratios": [1, 1.1, 1.3, 1.3]})
     if title:
         fig.suptitle(title, fontsize=13, fontweight="bold")
 
@@ -126,6 +150,26 @@ def plot_report(
         ax_t.set_yticklabels(labels, fontsize=7)
         ax_t.set_xlim(0, vmax * 1.18)
     ax_t.set_xlabel("T60 (s)")
+
+    # 4. modal amplitude bars (dB re a unit impulse, from a floor below the loudest)
+    ax_a.set_title("Amplitude of the listed partials at the output", fontsize=10)
+    bars = amplitude_bars(ms)
+    if bars is None:
+        ax_a.text(0.5, 0.5, "amplitudes unknown (no excitation input)", ha="center", va="center",
+                  transform=ax_a.transAxes, fontsize=8)
+        ax_a.set_yticks([])
+    else:
+        labels, vals, floor = bars
+        y = np.arange(len(vals))
+        top = max(vals)
+        ax_a.barh(y, [v - floor for v in vals], left=floor,
+                  color=["tab:green" if v == top else "tab:purple" for v in vals])
+        for yi, v in zip(y, vals):
+            ax_a.text(v + 0.5, yi, f"{v:.1f} dB", va="center", fontsize=7)
+        ax_a.set_yticks(y)
+        ax_a.set_yticklabels(labels, fontsize=7)
+        ax_a.set_xlim(floor, top + 0.2 * AMPLITUDE_RANGE_DB)
+    ax_a.set_xlabel("amplitude (dB re unit impulse)")
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
