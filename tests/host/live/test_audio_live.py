@@ -101,7 +101,19 @@ def test_events_arrive_at_expected_block_and_offset(output, make_kernel):
     assert c.events_pushed >= 60 and c.events_dropped == 0
 
     period_ns = BLOCK * 1e9 / rate
+
+    def stalled(block: int) -> bool:
+        """A machine stall near ``block``: a callback gap over 1.5 periods, or the
+        back-to-back catch-up after one (JACK keeps frame time, so an event then
+        lands by frames, later by the wall clock)."""
+        for b in range(max(1, block - 3), block + 1):
+            gap = state.render_ns[b] - state.render_ns[b - 1]
+            if gap > 1.5 * period_ns or gap < 0.5 * period_ns:
+                return True
+        return False
+
     close = 0
+    stalls = 0
     for k in range(60):
         i = state.echo_a[k]
         block, offset = state.echo_block[k], state.echo_offset[k]
@@ -110,6 +122,9 @@ def test_events_arrive_at_expected_block_and_offset(output, make_kernel):
         assert 0 <= offset < BLOCK
         # delivered by the first block that started after the stamp
         assert state.render_ns[block] > s
+        if stalled(block):
+            stalls += 1
+            continue
         t_prev = state.render_ns[block - 1]
         if s >= t_prev:
             # offset = (stamp - previous block start) * rate, within a few
@@ -118,7 +133,8 @@ def test_events_arrive_at_expected_block_and_offset(output, make_kernel):
             if abs(offset - expected) <= 3:
                 close += 1
         assert s >= t_prev - 2 * period_ns, "an event waited more than one block"
-    assert close >= 50, f"only {close}/60 events within 3 samples of the expected offset"
+    assert stalls <= 20, f"{stalls} of 60 events met a machine stall: too few left to judge"
+    assert close >= 50 - stalls, f"only {close}/{60 - stalls} events (outside stalls) within 3 samples of the expected offset"
 
 
 def test_switch_between_kernels_leaves_no_gap(output, make_kernel, tmp_path):
