@@ -25,7 +25,8 @@ def _add(p: argparse.ArgumentParser) -> None:
                           "(default 60, or the middle of the range when 60 is outside it)")
     src.add_argument("--midi", metavar="FILE.mid", help="render a Standard MIDI File (type 0 or 1)")
     p.add_argument("--velocity", type=int, default=100, help="note velocity 1-127 (default 100)")
-    p.add_argument("--seconds", type=float, default=2.0, help="length of a single note render (s)")
+    p.add_argument("--seconds", type=float, default=2.0,
+                   help="length of a single note render (s): the note is held for the first 75 %%, then released")
     p.add_argument("--out", metavar="FILE.wav", help="output WAV file")
     p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 88200, 96000, 192000), help="sample rate (Hz)")
     p.add_argument("--set", action="append", metavar="NAME=VALUE", help="set a parameter (repeatable)")
@@ -76,6 +77,10 @@ def _run(args: argparse.Namespace) -> int:
         lo, hi = preset.notes
         print(f"sheafsynth: skipped {stats['notes_out_of_range']} note(s) outside {preset.name}'s playable "
               f"range {lo}-{hi}: {which}", file=sys.stderr)
+    if stats.get("program_changes_ignored"):
+        shown = ", ".join(str(b + 1) for b in stats["program_changes_which"])
+        print(f"sheafsynth: ignored {stats['program_changes_ignored']} program change(s) in {args.midi} "
+              f"(programs {shown}): a render plays {preset.name} only", file=sys.stderr)
     path = write_wav(out, audio, inst.rate, "FLOAT" if args.float else "PCM_24")
     c = inst.counters
     print(f"wrote {path} ({len(audio) / inst.rate:.2f} s, peak {peak_dbfs(audio):.1f} dBFS"

@@ -108,10 +108,13 @@ def render_midi(inst: Instrument, path: str | Path, *, channel: int | None = Non
 
     Returns (mono float32 audio at ``inst.rate`` Hz, stats): "midi_messages" and "midi_ignored"
     counted by the translator, "notes_out_of_range" (note-ons skipped: outside the preset's
-    playable range ``preset.notes``) and "notes_out_of_range_which" (those notes, sorted).
+    playable range ``preset.notes``) and "notes_out_of_range_which" (those notes, sorted),
+    "program_changes_ignored" (program changes on the rendered channel: a render plays one preset,
+    so they change nothing) and "program_changes_which" (their MIDI data bytes 0-127, sorted, unique).
     """
     events = midi_events(path)
-    tr = MidiTranslator(inst.preset, inst.program.param_index, channel=channel)
+    programs: list[int] = []
+    tr = MidiTranslator(inst.preset, inst.program.param_index, channel=channel, on_program=programs.append)
     rate = inst.rate
     end = events[-1][0] if events else 0.0
     total = int(np.ceil(end * rate)) + 1
@@ -152,7 +155,8 @@ def render_midi(inst: Instrument, path: str | Path, *, channel: int | None = Non
             break
     stats = {"midi_messages": tr.counters.received, "midi_ignored": tr.counters.ignored,
              "notes_out_of_range": tr.counters.out_of_range,
-             "notes_out_of_range_which": sorted(tr.counters.out_of_range_notes)}
+             "notes_out_of_range_which": sorted(tr.counters.out_of_range_notes),
+             "program_changes_ignored": len(programs), "program_changes_which": sorted(set(programs))}
     return np.concatenate(chunks) if chunks else np.zeros(0, np.float32), stats
 
 
