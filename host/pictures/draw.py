@@ -67,7 +67,17 @@ def vertex_xy(model: FieldModel) -> np.ndarray:
     c = np.asarray(cx.coords, dtype=float)
     if c.shape[1] == 1:
         return np.column_stack([c[:, 0], np.zeros(len(c))])
-    return np.column_stack([c[:, 1], 1.0 - c[:, 0]])       # axis 1 across, axis 0 down (rows of the grid)
+    sy, sx = _spans(model)
+    return np.column_stack([c[:, 1] * sx, sy * (1.0 - c[:, 0])])   # axis 1 across, axis 0 down (grid rows)
+
+
+def _spans(model: FieldModel) -> tuple[float, float]:
+    """Drawing lengths of a 2-D complex's axes (0, 1), so that the grid spacing is the same both ways."""
+    shape = model.complex.shape
+    if not shape or len(shape) != 2:
+        return 1.0, 1.0
+    big = float(max(shape))
+    return shape[0] / big, shape[1] / big
 
 
 def point_xy(model: FieldModel, point: Point, env: dict[str, float] | None = None) -> np.ndarray | None:
@@ -81,7 +91,8 @@ def point_xy(model: FieldModel, point: Point, env: dict[str, float] | None = Non
     fr = [min(1.0, max(0.0, f32(c.value(vals)))) for c in point.coords]
     if len(fr) == 1:
         return np.array([fr[0], 0.0])
-    return np.array([fr[1], 1.0 - fr[0]])
+    sy, sx = _spans(model)
+    return np.array([fr[1] * sx, sy * (1.0 - fr[0])])
 
 
 def _draw_network(ax, net: NetworkPicture) -> None:
@@ -138,9 +149,9 @@ def _draw_complex(ax, model: FieldModel, k: int, preset: Preset) -> None:
     size = 14.0 if cx.n_vertices < 200 else 5.0
     dots = ax.scatter(xy[:, 0], xy[:, 1], s=size, c=faces, edgecolors="0.2", linewidths=0.5, zorder=3)
     dots.set_gid(f"field{k}-vertices")
+    seam_note = ""
     if (seam >= 0).any():
-        tag = "Möbius seam (twisted)" if cx.wrap == "mobius" else f"{cx.wrap} seam (wraps)"
-        ax.text(0.5, -0.02, f"dashed edge: {tag}", transform=ax.transAxes, ha="center", va="top", fontsize=6.5)
+        seam_note = "\ndashed edge: " + ("Möbius seam (twisted)" if cx.wrap == "mobius" else f"{cx.wrap} seam (wraps)")
         for axis in sorted({int(s) for s in seam if s >= 0}):
             if np.ptp(xy[:, 1]) == 0 or axis == 1:
                 ax.axvline(xy[:, 0].max() + 0.5 / max(1, cx.shape[-1] if cx.shape else 1), ls="--", color="0.4")
@@ -162,9 +173,9 @@ def _draw_complex(ax, model: FieldModel, k: int, preset: Preset) -> None:
                         ax.text(ends[1][0], ends[1][1], f" {name}", fontsize=6.5, color=_KNOB, zorder=6)
             ax.scatter([at[0]], [at[1]], s=90, marker=marker, color=colour, edgecolors="k", zorder=5,
                        label=label if i == 0 else None)
-    ax.legend(loc="upper right", fontsize=6.5, framealpha=0.85)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.02), ncol=2, fontsize=6.5, framealpha=0.85)
     ax.set_title(f"{model.name}: {cx.kind} {' x '.join(map(str, cx.shape or ()))}, {model.boundary} rim, "
-                 f"{model.dynamics}", fontsize=8.5)
+                 f"{model.dynamics}{seam_note}", fontsize=8.5)
     ax.set_aspect("equal" if np.ptp(xy[:, 1]) > 0 else "auto")
     ax.margins(0.08)
     ax.set_xticks([])
@@ -178,6 +189,10 @@ def _draw_mode(ax, model: FieldModel, values: np.ndarray, title: str) -> None:
         ax.axhline(0.0, color="0.8", lw=0.8)
         ax.plot(xy[order, 0], values[order], color="#2e7d32", lw=1.6, marker="o", ms=2.5)
         ax.set_ylim(-1.15, 1.15)
+    elif model.complex.kind == "grid" and model.complex.shape is not None and len(model.complex.shape) == 2:
+        sy, sx = _spans(model)                  # vertex v = row * columns + column
+        ax.imshow(values.reshape(model.complex.shape), cmap="coolwarm", vmin=-1.0, vmax=1.0,
+                  extent=(0.0, sx, 0.0, sy), interpolation="nearest")
     else:
         size = 30.0 if model.complex.n_vertices < 400 else 9.0
         ax.scatter(xy[:, 0], xy[:, 1], c=values, cmap="coolwarm", vmin=-1.0, vmax=1.0, s=size, marker="s",
