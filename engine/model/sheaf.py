@@ -26,8 +26,8 @@ from sheafsynth.engine.model.rate_maps import excitation_band
 from sheafsynth.engine.model.timebase import Timebase
 from sheafsynth.engine.errors import PresetError
 
-__all__ = ["EXCITE", "OUT", "Wire", "NetworkSheaf", "build_sheaf", "sheaf_of", "delay_free_loop",
-           "evaluation_order"]
+__all__ = ["EXCITE", "OUT", "EXCITATION_BAND_CELL", "Wire", "NetworkSheaf", "build_sheaf", "sheaf_of",
+           "delay_free_loop", "evaluation_order"]
 
 EXCITE = -1   # the voice's excitation input (an endpoint, not a cell)
 OUT = -2      # the voice's output (an endpoint, not a cell)

@@ -41,7 +41,7 @@ from typing import NoReturn
 from sheafsynth.engine.errors import PresetError
 from sheafsynth.engine.preset.affine import Affine, parse_entry
 
-__all__ = ["REFERENCE_RATE", "Timebase", "native_timebase", "excitation_at"]
+__all__ = ["REFERENCE_RATE", "Timebase", "excitation_at"]
 
 REFERENCE_RATE = 48000.0   # Hz: the design rate of version 1 presets and the default of version 2
 
@@ -107,11 +107,6 @@ class Timebase:
         """Raise the one-line error for a per-sample quantity that cannot move to this rate."""
         raise PresetError(f"{what} is written per sample for {self.design_rate:g} Hz and cannot be carried "
                           f"to {self.rate:g} Hz; {fix}", path)
-
-
-def native_timebase(design_rate: float = REFERENCE_RATE) -> Timebase:
-    """The timebase at the design rate itself (per-sample values as written)."""
-    return Timebase(design_rate, design_rate)
 
 
 def _only_key(raw: dict, key: str, path: str) -> float:
