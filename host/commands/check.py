@@ -4,7 +4,7 @@ Exit status 0 when the preset is stable at every corner and note, 1 when it
 is not, 2 for bad input.  ``--json`` prints the report (shape in
 engine/analysis/schema/check-report.json); ``--modes N`` sets how many
 partials are listed (the lowest and the strongest at the output, default
-8); ``--plot FILE.png`` draws poles, the partial ladder and T60 bars.
+8); ``--plot FILE.png`` draws poles, the partial ladder, T60 bars and modal amplitude bars.
 """
 
 from __future__ import annotations
@@ -35,7 +35,7 @@ def _add(p: argparse.ArgumentParser) -> None:
     p.add_argument("preset", metavar="PRESET")
     p.add_argument("--notes", metavar="N,N,N", help="MIDI notes to check (default: lowest, middle, highest playable)")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
-    p.add_argument("--plot", metavar="FILE.png", help="draw poles, partials and T60 bars to a PNG")
+    p.add_argument("--plot", metavar="FILE.png", help="draw poles, partials, T60 bars and modal amplitude bars to a PNG")
     p.add_argument("--set", action="append", metavar="NAME=VALUE", help="check with a parameter changed")
     p.add_argument("--rate", type=int, default=48000, choices=(44100, 48000, 88200, 96000, 192000))
     p.add_argument("--no-cache", action="store_true", help="recompute instead of reusing a stored report")

@@ -145,7 +145,7 @@ class ProgramBank:
                         "checks it and lets its knobs move as fast as the proof allows)"]
             slot = self._make_slot(number, entry.name, preset, {}, ramps={})
         else:
-            self._say(f"program {number} ({entry.name}) left out: not checked yet; run "
+            self._say(f"program {number + 1} ({entry.name}) left out: not checked yet; run "
                       f"`sheafsynth check {entry.name}` once (or pass --allow-unstable)")
             return None
         slot.warnings = warnings        # said when the program is chosen
@@ -167,7 +167,7 @@ class ProgramBank:
             try:
                 self.slots.append(self._bank_slot(number, e))
             except Exception as exc:  # one bad bank preset must not stop the others
-                self._say(f"program {number} ({e.name}) left out: {exc}")
+                self._say(f"program {number + 1} ({e.name}) left out: {exc}")
                 self.slots.append(None)
         if start is None:
             start = self._make_slot(None, first.name, first, o.sets)
@@ -228,7 +228,7 @@ class ProgramBank:
         bend range) carry over to the new program.
         """
         if not 0 <= number < len(self.slots) or self.slots[number] is None:
-            self._say(f"program {number}: no usable preset there "
+            self._say(f"program {number + 1}: no usable preset there "
                       f"(the bank has {len(self.slots)}; see `sheafsynth presets`)")
             return
         slot = self.slots[number]
@@ -244,7 +244,7 @@ class ProgramBank:
             time.sleep(0.0005)
         k = self._free_instance(slot, rt)
         if k is None:
-            self._say(f"program {number} ({slot.name}): still fading out from before; try again")
+            self._say(f"program {number + 1} ({slot.name}): still fading out from before; try again")
             return
         inst = slot.instances[k]
         self._recall(slot, inst)
