@@ -115,8 +115,10 @@ def open_cluster(workers: int | None = None, scheduler: str | None = None,
     n = machine_workers() if workers is None else int(workers)
     if not 1 <= n <= 512:
         raise InputError(f"--workers {n}: expected 1 to 512 worker processes")
+    # CRITICAL: a worker that outlives its scheduler by a heartbeat at close logs
+    # a harmless traceback at ERROR; task errors still reach the client as exceptions
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=":0",
-                           silence_logs=logging.ERROR)
+                           silence_logs=logging.CRITICAL)
     try:
         client = Client(cluster, set_as_default=False)
         try:
