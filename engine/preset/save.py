@@ -21,7 +21,8 @@ from sheafsynth.engine.preset.load import parse_preset
 from sheafsynth.engine.preset.checks import check_values
 from sheafsynth.engine.preset.spec import Preset
 
-__all__ = ["STALE_TEMP_S", "dump_preset", "save_preset", "sweep_stale_temps", "atomic_write_text"]
+__all__ = ["STALE_TEMP_S", "dump_preset", "save_preset", "sweep_stale_temps", "atomic_write_text",
+           "atomic_write_bytes"]
 
 STALE_TEMP_S = 600.0
 """A temp file of an atomic write untouched this long (s) belongs to a write that was killed."""
@@ -75,7 +76,12 @@ def sweep_stale_temps(target: str | os.PathLike, older_than_s: float = STALE_TEM
 
 
 def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
-    """Write ``text`` so readers see the old file or the new one, never a part.
+    """Write ``text`` (UTF-8) so readers see the old file or the new one, never a part (atomic_write_bytes)."""
+    return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
+    """Write ``data`` so readers see the old file or the new one, never a part.
 
     Temp file in the same folder, fsync, rename, fsync of the folder.  Temp
     files that earlier, killed writes of the same file left are swept first
@@ -87,8 +93,8 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> Path:
     fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".tmp", dir=target.parent)
     try:
         os.chmod(tmp, _file_mode(target))
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, target)

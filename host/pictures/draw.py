@@ -22,8 +22,8 @@ In the SVG every field's vertex dots form one group with id
 
 from __future__ import annotations
 
+import io
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -31,7 +31,7 @@ import numpy as np
 from sheafsynth.engine.errors import InputError, PlotUnavailable
 from sheafsynth.engine.model.cells.field_model import FieldModel, Point, f32
 from sheafsynth.engine.model.sheaf import sheaf_of
-from sheafsynth.engine.preset import Preset
+from sheafsynth.engine.preset import Preset, atomic_write_bytes
 from sheafsynth.host.pictures.layout import NetworkPicture, network_picture
 from sheafsynth.host.pictures.modes import lowest_modes
 
@@ -207,16 +207,6 @@ def _fields(preset: Preset, rate: float) -> list[FieldModel]:
     return [c.extra["field"] for c in sheaf_of(preset, rate).cells if c.extra and "field" in c.extra]
 
 
-def _file_mode(target: Path) -> int:
-    """An existing picture's mode, else 0666 minus the umask (mkstemp alone would give 0600)."""
-    try:
-        return target.stat().st_mode & 0o777
-    except FileNotFoundError:
-        umask = os.umask(0)
-        os.umask(umask)
-        return 0o666 & ~umask
-
-
 def draw_instrument(preset: Preset, path: str | os.PathLike, rate: float = 48000.0) -> Path:
     """Draw ``preset`` at ``rate`` Hz to ``path`` (.png or .svg), atomically; returns the path written.
 
@@ -248,19 +238,8 @@ def draw_instrument(preset: Preset, path: str | os.PathLike, rate: float = 48000
                 else:
                     ax.axis("off")
         fig.tight_layout()
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".tmp", dir=target.parent)
-        os.close(fd)
-        try:
-            os.chmod(tmp, _file_mode(target))
-            fig.savefig(tmp, format=fmt, dpi=100)
-            os.replace(tmp, target)
-        except BaseException:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
-            raise
+        buf = io.BytesIO()
+        fig.savefig(buf, format=fmt, dpi=100)
     finally:
         plt.close(fig)
-    return target
+    return atomic_write_bytes(target, buf.getvalue())
